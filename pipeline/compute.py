@@ -1,0 +1,201 @@
+"""Choosing and starting the scheduler that runs a stage's tasks.
+
+``[compute] scheduler`` selects one of:
+
+``"threads"``        a thread pool in this process (default; NumPy, FFTs and numba release the GIL)
+``"processes"``      a pool of spawned worker processes on this machine
+``"local-cluster"``  a ``distributed.LocalCluster`` with ``workers`` worker processes
+``"tcp://host:port"`` an existing dask.distributed scheduler
+``"slurm"``          a ``dask_jobqueue.SLURMCluster`` built from ``[compute.slurm]``
+
+Stages call :meth:`Compute.map` (one task per item, results in input order) or
+:meth:`Compute.compute` (dask collections). Both show one progress bar that works under every
+scheduler: dask's own bars print nothing under a distributed Client, so progress is counted from
+futures completing (``as_completed``).
+"""
+
+from __future__ import annotations
+
+import concurrent.futures as cf
+import logging
+import multiprocessing
+import os
+from collections.abc import Callable, Iterable, Sequence
+from typing import Any
+
+from tqdm.auto import tqdm
+
+from pipeline.config import ComputeSettings
+from pipeline.errors import ConfigError
+
+__all__ = ["Compute", "slurm_cluster"]
+
+log = logging.getLogger("forkmap")
+
+
+def slurm_cluster(settings: ComputeSettings) -> Any:
+    """Build (but do not scale) a ``dask_jobqueue.SLURMCluster`` from ``[compute.slurm]``."""
+    try:
+        from dask_jobqueue import SLURMCluster
+    except ImportError:  # pragma: no cover - depends on the install
+        raise ConfigError("compute.scheduler = 'slurm' needs dask-jobqueue: "
+                          "pip install 'forkmap[slurm]'") from None
+    s = settings.slurm
+    kwargs: dict[str, Any] = {
+        "cores": s.cores, "memory": s.memory, "walltime": s.walltime,
+        "processes": s.processes,
+    }
+    if s.queue:
+        kwargs["queue"] = s.queue
+    if s.account:
+        kwargs["account"] = s.account
+    if s.local_directory:
+        kwargs["local_directory"] = s.local_directory
+    return SLURMCluster(**kwargs)
+
+
+class Compute:
+    """The scheduler for one run.
+
+    Parameters
+    ----------
+    settings : ComputeSettings
+        The ``[compute]`` section.
+    quiet : bool, default=False
+        Hide progress bars.
+    """
+
+    def __init__(self, settings: ComputeSettings | None = None, *, quiet: bool = False) -> None:
+        self.settings = settings or ComputeSettings()
+        self.quiet = quiet
+        self.client: Any = None
+        self._cluster: Any = None
+        self._pool: cf.Executor | None = None
+        sched = self.settings.scheduler
+        if sched == "local-cluster":
+            from distributed import Client, LocalCluster
+
+            self._cluster = LocalCluster(
+                n_workers=self.n_workers, threads_per_worker=self.settings.threads_per_worker,
+                memory_limit=self.settings.memory_per_worker, processes=True,
+                dashboard_address=None,
+            )
+            self.client = Client(self._cluster)
+        elif sched.startswith("tcp://"):
+            from distributed import Client
+
+            self.client = Client(sched)
+        elif sched == "slurm":
+            from distributed import Client
+
+            self._cluster = slurm_cluster(self.settings)
+            self._cluster.scale(jobs=self.settings.slurm.jobs)
+            self.client = Client(self._cluster)
+
+    @property
+    def n_workers(self) -> int:
+        """Number of parallel workers (cores when ``workers = 0``)."""
+        return self.settings.workers or os.cpu_count() or 1
+
+    @property
+    def scheduler(self) -> str:
+        return self.settings.scheduler
+
+    def _executor(self) -> cf.Executor:
+        if self._pool is None:
+            if self.settings.scheduler == "processes":
+                self._pool = cf.ProcessPoolExecutor(
+                    self.n_workers, mp_context=multiprocessing.get_context("spawn"))
+            else:
+                self._pool = cf.ThreadPoolExecutor(self.n_workers)
+        return self._pool
+
+    def map(self, fn: Callable[..., Any], items: Iterable[Any], *args: Any, desc: str = "",
+            **kwargs: Any) -> list[Any]:
+        """Run ``fn(item, *args, **kwargs)`` for every item; results in input order.
+
+        ``fn`` must be a module-level function with plain arguments so that it can run on
+        process workers and on a cluster.
+        """
+        items = list(items)
+        if not items:
+            return []
+        bar = tqdm(total=len(items), desc=desc, disable=self.quiet, unit="task", leave=False)
+        try:
+            if self.client is not None:
+                from distributed import as_completed
+
+                futures = self.client.map(fn, items, *[[a] * len(items) for a in args],
+                                          pure=False, **kwargs)
+                for _ in as_completed(futures):
+                    bar.update(1)
+                return self.client.gather(futures)
+            if self.n_workers == 1:
+                out = []
+                for item in items:
+                    out.append(fn(item, *args, **kwargs))
+                    bar.update(1)
+                return out
+            pool = self._executor()
+            futs = [pool.submit(fn, item, *args, **kwargs) for item in items]
+            try:
+                for _ in cf.as_completed(futs):
+                    bar.update(1)
+            except BaseException:
+                for f in futs:
+                    f.cancel()
+                raise
+            return [f.result() for f in futs]
+        finally:
+            bar.close()
+
+    def compute(self, *collections: Any, desc: str = "") -> Sequence[Any]:
+        """Compute dask collections on this scheduler with a progress bar."""
+        import dask
+
+        if self.client is not None:
+            from distributed import as_completed, futures_of
+
+            persisted = self.client.persist(list(collections))
+            futs = futures_of(persisted)
+            with tqdm(total=len(futs), desc=desc, disable=self.quiet, leave=False) as bar:
+                for _ in as_completed(futs):
+                    bar.update(1)
+            return self.client.compute(persisted, sync=True)
+        from dask.callbacks import Callback
+
+        class _Bar(Callback):
+            def _start_state(self, dsk: Any, state: Any) -> None:
+                self._bar = tqdm(total=sum(len(state[k]) for k in ("ready", "waiting",
+                                                                     "running")),
+                                 desc=desc, disable=outer.quiet, leave=False)
+
+            def _posttask(self, key: Any, result: Any, dsk: Any, state: Any, wid: Any) -> None:
+                self._bar.update(1)
+
+            def _finish(self, dsk: Any, state: Any, errored: Any) -> None:
+                self._bar.close()
+
+        outer = self
+        scheduler = "processes" if self.settings.scheduler == "processes" else "threads"
+        with _Bar():
+            return dask.compute(*collections, scheduler=scheduler,
+                                num_workers=self.n_workers)
+
+    def close(self) -> None:
+        """Shut down pools, clients and clusters started by this object."""
+        if self._pool is not None:
+            self._pool.shutdown(wait=True, cancel_futures=True)
+            self._pool = None
+        if self.client is not None:
+            self.client.close()
+            self.client = None
+        if self._cluster is not None:
+            self._cluster.close()
+            self._cluster = None
+
+    def __enter__(self) -> Compute:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()

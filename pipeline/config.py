@@ -1,0 +1,410 @@
+"""Typed, validated settings: one frozen dataclass per TOML section.
+
+The config file is parsed once by :func:`load_config`; every stage receives the resulting
+:class:`Settings` and reads typed attributes (``settings.motion.upsample``). Each field carries
+its default, unit and a one-line doc in its metadata; ``configs/template.toml`` documents them.
+
+Relative paths resolve against the config file's folder.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import glob
+import hashlib
+import json
+import tomllib
+from dataclasses import dataclass, field
+from pathlib import Path
+from types import MappingProxyType
+from typing import Any, Literal
+
+from pipeline._typedparse import closest, parse_section
+from pipeline.errors import ConfigError
+
+__all__ = [
+    "Settings",
+    "SessionSettings",
+    "ImagingSettings",
+    "BehaviourSettings",
+    "TargetSpec",
+    "SyncSettings",
+    "MotionSettings",
+    "CellsSettings",
+    "TracesSettings",
+    "DecodeSettings",
+    "TuningSettings",
+    "ReportSettings",
+    "ComputeSettings",
+    "SlurmSettings",
+    "load_config",
+    "parse_config",
+    "section_hash",
+]
+
+
+def _f(default: Any = dataclasses.MISSING, doc: str = "", **meta: Any) -> Any:
+    """A dataclass field with its doc and constraints in the metadata."""
+    meta["doc"] = doc
+    if isinstance(default, dict):
+        return field(default_factory=lambda: MappingProxyType(dict(default)), metadata=meta)
+    if default is dataclasses.MISSING:
+        return field(metadata=meta)
+    return field(default=default, metadata=meta)
+
+
+# --------------------------------------------------------------------------------------------
+@dataclass(frozen=True, kw_only=True)
+class SessionSettings:
+    output: Path = _f(doc="output folder of the session store", path="out")
+    name: str = _f("session", doc="session name shown in the report and the NWB file")
+    description: str = _f("", doc="free text kept in the manifest and the NWB file")
+    subject: str = _f("larva", doc="subject id for the NWB export")
+    species: str = _f("Danio rerio", doc="species for the NWB export")
+
+
+@dataclass(frozen=True, kw_only=True)
+class ImagingSettings:
+    raw: str = _f(doc="glob of the raw TIFF files (relative to the config file)")
+    voxel_size_um: tuple[float, float, float] = _f(doc="voxel size (z, y, x)", unit="um", gt=0.0)
+    volume_rate_hz: float = _f(doc="volumes per second", unit="Hz", gt=0.0)
+    layout: Literal["per-volume", "per-plane", "stack"] = _f(
+        "per-volume", doc="one file per volume, one file per plane, or long stacks (t-major)")
+    index_regex: str = _f(r"(\d+)(?!.*\d)", doc="regex whose first group is the file index")
+    plane_regex: str = _f(r"[Pp]lane_?(\d+)", doc="per-plane layout: regex of the plane index")
+    planes_per_volume: int = _f(doc="planes acquired per volume, flyback planes included", ge=1)
+    flyback_planes: tuple[int, ...] = _f((), doc="indices of acquired planes to drop", ge=0)
+    plane_order: Literal["ascending", "descending", "alternating"] = _f(
+        "ascending", doc="acquisition order of planes; alternating = bidirectional scan")
+    flyback_s: float = _f(0.0, doc="dead time between the last plane and the next volume",
+                          unit="s", ge=0.0)
+    plane_timestamps: Path | None = _f(None, doc="optional CSV of per-plane times (s)",
+                                       path="file")
+    indicator: str = _f("GCaMP6s", doc="calcium indicator (for NWB and defaults)")
+    decay_s: float = _f(1.8, doc="indicator decay time constant", unit="s", gt=0.0)
+    rise_s: float = _f(0.18, doc="indicator rise time", unit="s", gt=0.0)
+    chunk_planes: int = _f(0, doc="planes per zarr chunk (0 = the whole volume)", ge=0)
+    codec: Literal["lz4", "zstd", "none"] = _f("lz4", doc="Blosc codec (bitshuffled)")
+    codec_level: int = _f(5, doc="Blosc compression level", ge=0, le=9)
+    excitation_nm: float = _f(488.0, doc="excitation wavelength for NWB", unit="nm", gt=0.0)
+    emission_nm: float = _f(510.0, doc="emission wavelength for NWB", unit="nm", gt=0.0)
+    location: str = _f("whole brain", doc="imaged region for NWB")
+
+    def check(self) -> str | None:
+        bad = [p for p in self.flyback_planes if p >= self.planes_per_volume]
+        if bad:
+            return (f"flyback_planes = {list(self.flyback_planes)}: indices must be below "
+                    f"planes_per_volume = {self.planes_per_volume}")
+        if len(self.flyback_planes) >= self.planes_per_volume:
+            return "flyback_planes drops every plane"
+        return None
+
+    @property
+    def n_planes(self) -> int:
+        """Planes kept per volume (after dropping flyback planes)."""
+        return self.planes_per_volume - len(set(self.flyback_planes))
+
+
+@dataclass(frozen=True, kw_only=True)
+class TargetSpec:
+    name: str = _f(doc="target name (t0, t1, ... or a label)")
+    x: str = _f(doc="log column of the target's x position")
+    y: str = _f(doc="log column of the target's y position")
+
+
+@dataclass(frozen=True, kw_only=True)
+class BehaviourSettings:
+    log: Path = _f(doc="rig log file (CSV or Parquet)", path="file")
+    format: Literal["auto", "csv", "parquet"] = _f("auto", doc="log file format")
+    columns: dict[str, str] = _f(
+        {}, doc="canonical name -> log column: time, x, y, heading, turn, bout, vigor, trial, "
+        "trigger")
+    targets: tuple[TargetSpec, ...] = _f((), doc="targets, each with its position columns")
+    time_unit: Literal["s", "ms", "us"] = _f("s", doc="unit of the time column")
+    position_unit: Literal["mm", "um", "virtual"] = _f("mm", doc="unit of positions")
+    position_scale_mm: float = _f(1.0, doc="mm per virtual unit (position_unit = virtual)",
+                                  unit="mm", gt=0.0)
+    angle_unit: Literal["rad", "deg"] = _f("rad", doc="unit of heading")
+    max_gap_s: float = _f(0.05, doc="NaN runs up to this long are interpolated, longer fail",
+                          unit="s", ge=0.0)
+
+
+@dataclass(frozen=True, kw_only=True)
+class SyncSettings:
+    trigger_column: str = _f("trigger", doc="canonical column with the digital trigger")
+    timestamps: Path | None = _f(None, doc="optional file of pulse times instead", path="file")
+    debounce_s: float = _f(0.002, doc="edges closer than this are one pulse", unit="s", ge=0.0)
+    min_match_fraction: float = _f(0.9, doc="fail when fewer volumes match a pulse", gt=0.0,
+                                   le=1.0)
+    pulse_per: Literal["volume", "plane"] = _f("volume", doc="one pulse per volume or plane")
+
+
+@dataclass(frozen=True, kw_only=True)
+class MotionSettings:
+    enabled: bool = _f(True, doc="estimate rigid motion (false: all shifts zero)")
+    reference_start: int = _f(0, doc="first volume of the reference block", ge=0)
+    reference_count: int = _f(50, doc="volumes averaged for the reference", ge=1)
+    upsample: int = _f(20, doc="sub-voxel refinement factor (1/upsample voxel)", ge=1)
+    bin_yx: int = _f(1, doc="bin y and x by this factor for estimation", ge=1)
+    highpass_sigma_um: float = _f(10.0, doc="high-pass before correlation (0 = off)", unit="um",
+                                  ge=0.0)
+    max_shift_um: float = _f(20.0, doc="shifts larger than this are flagged", unit="um", gt=0.0)
+    z_drift_fraction: float = _f(0.5, doc="flag |dz| above this fraction of a plane", gt=0.0)
+    quality_mad: float = _f(5.0, doc="flag quality below median - k * MAD", gt=0.0)
+    block_volumes: int = _f(8, doc="volumes per task", ge=1)
+
+
+@dataclass(frozen=True, kw_only=True)
+class CellsSettings:
+    diameter_um: float = _f(6.0, doc="expected cell (nucleus) diameter", unit="um", gt=0.0)
+    min_separation_um: float = _f(4.0, doc="minimum distance between cell centres", unit="um",
+                                  gt=0.0)
+    threshold_mad: float = _f(4.0, doc="detection threshold: median + k * MAD of the filtered "
+                              "image", gt=0.0)
+    use_local_correlation: bool = _f(True, doc="combine mean and local-correlation images")
+
+
+@dataclass(frozen=True, kw_only=True)
+class TracesSettings:
+    neuropil_r: float = _f(0.7, doc="corrected = cell - r * neuropil", ge=0.0, le=2.0)
+    ring_inner_um: float = _f(1.0, doc="neuropil ring starts this far from the cell", unit="um",
+                              ge=0.0)
+    ring_outer_um: float = _f(6.0, doc="neuropil ring ends this far from the cell", unit="um",
+                              gt=0.0)
+    baseline_window_s: float = _f(60.0, doc="running-percentile baseline window", unit="s",
+                                  gt=0.0)
+    baseline_percentile: float = _f(8.0, doc="percentile of the baseline", gt=0.0, lt=100.0)
+    deconvolve: bool = _f(True, doc="OASIS deconvolution into events")
+    block_volumes: int = _f(16, doc="volumes per extraction task", ge=1)
+
+    def check(self) -> str | None:
+        if self.ring_outer_um <= self.ring_inner_um:
+            return (f"ring_outer_um = {self.ring_outer_um} must be larger than ring_inner_um = "
+                    f"{self.ring_inner_um}")
+        return None
+
+
+@dataclass(frozen=True, kw_only=True)
+class DecodeSettings:
+    enabled: bool = _f(True, doc="run the decoders")
+    feature: Literal["dff", "events"] = _f("dff", doc="activity used as features")
+    lag_min_s: float = _f(-5.0, doc="earliest lag (negative = activity before the turn)",
+                          unit="s")
+    lag_max_s: float = _f(2.0, doc="latest lag", unit="s")
+    alphas: tuple[float, ...] = _f((0.1, 1.0, 10.0, 100.0, 1e3, 1e4, 1e5),
+                                   doc="ridge penalties tried by nested CV", gt=0.0)
+    n_folds: int = _f(5, doc="outer cross-validation folds", ge=2)
+    gap_s: float = _f(0.0, doc="extra gap either side of a test block (decay and lag span "
+                      "are always added)", unit="s", ge=0.0)
+    n_null: int = _f(200, doc="null refits (trial shuffles or circular shifts)", ge=0)
+    pca_components: int = _f(0, doc="PCA components fitted within folds (0 = none)", ge=0)
+    pre_bout_window_s: float = _f(1.0, doc="window before bout onset for bout-wise targets",
+                                  unit="s", gt=0.0)
+
+    def check(self) -> str | None:
+        if self.lag_max_s < self.lag_min_s:
+            return f"lag_max_s = {self.lag_max_s} is below lag_min_s = {self.lag_min_s}"
+        return None
+
+
+@dataclass(frozen=True, kw_only=True)
+class TuningSettings:
+    enabled: bool = _f(True, doc="run the tuning analysis")
+    feature: Literal["dff", "events"] = _f("dff", doc="activity used")
+    n_bins: int = _f(12, doc="bearing bins of the tuning curve", ge=4, le=72)
+    min_occupancy_s: float = _f(1.0, doc="bins with less time are left empty", unit="s", ge=0.0)
+    pre_window_s: float = _f(30.0, doc="samples up to this long before the split", unit="s",
+                             gt=0.0)
+    post_window_s: float = _f(30.0, doc="samples up to this long after the split", unit="s",
+                              gt=0.0)
+    n_permutations: int = _f(1000, doc="permutations of the null", ge=10)
+    null: Literal["trial", "circular"] = _f("trial", doc="trial shuffle or circular shift")
+    min_shift_s: float = _f(20.0, doc="minimum circular shift", unit="s", ge=0.0)
+    fdr_q: float = _f(0.05, doc="Benjamini-Hochberg level", gt=0.0, lt=1.0)
+    block_cells: int = _f(4096, doc="cells per task", ge=1)
+
+
+@dataclass(frozen=True, kw_only=True)
+class ReportSettings:
+    enabled: bool = _f(True, doc="write report/index.html")
+    n_raster_cells: int = _f(200, doc="cells shown in the dF/F raster", ge=1)
+    screenshot: bool = _f(False, doc="render the page in headless Chromium and save a PNG")
+
+
+@dataclass(frozen=True, kw_only=True)
+class SlurmSettings:
+    queue: str = _f("", doc="partition")
+    account: str = _f("", doc="account")
+    cores: int = _f(16, doc="cores per job", ge=1)
+    memory: str = _f("64GB", doc="memory per job")
+    walltime: str = _f("04:00:00", doc="walltime per job")
+    jobs: int = _f(1, doc="jobs to start", ge=1)
+    processes: int = _f(4, doc="dask worker processes per job", ge=1)
+    local_directory: str = _f("", doc="worker scratch folder on the node")
+
+
+@dataclass(frozen=True, kw_only=True)
+class ComputeSettings:
+    scheduler: str = _f("threads", doc='"threads", "processes", "local-cluster", '
+                        '"tcp://host:port" or "slurm"')
+    workers: int = _f(0, doc="worker count (0 = number of cores)", ge=0)
+    threads_per_worker: int = _f(1, doc="threads per worker (cluster schedulers)", ge=1)
+    memory_per_worker: str = _f("4GB", doc="memory limit per worker (cluster schedulers)")
+    slurm: SlurmSettings = field(default_factory=SlurmSettings, metadata={"doc": "SLURM jobs"})
+
+    def check(self) -> str | None:
+        known = ("threads", "processes", "local-cluster", "slurm")
+        if self.scheduler in known or self.scheduler.startswith("tcp://"):
+            return None
+        return (f"scheduler = {self.scheduler!r}: expected one of "
+                f"{', '.join(repr(k) for k in known)} or 'tcp://host:port'"
+                f"{closest(self.scheduler, known)}")
+
+
+# --------------------------------------------------------------------------------------------
+_SECTIONS: dict[str, type] = {
+    "session": SessionSettings,
+    "imaging": ImagingSettings,
+    "behaviour": BehaviourSettings,
+    "sync": SyncSettings,
+    "motion": MotionSettings,
+    "cells": CellsSettings,
+    "traces": TracesSettings,
+    "decode": DecodeSettings,
+    "tuning": TuningSettings,
+    "report": ReportSettings,
+    "compute": ComputeSettings,
+}
+_REQUIRED = ("session", "imaging")
+
+
+@dataclass(frozen=True, kw_only=True)
+class Settings:
+    """All sections of one config file, parsed and checked."""
+
+    session: SessionSettings
+    imaging: ImagingSettings
+    behaviour: BehaviourSettings | None
+    sync: SyncSettings
+    motion: MotionSettings
+    cells: CellsSettings
+    traces: TracesSettings
+    decode: DecodeSettings
+    tuning: TuningSettings
+    report: ReportSettings
+    compute: ComputeSettings
+    source: Path | None = None
+    raw_toml: str = ""
+
+    def raw_files(self) -> list[Path]:
+        """The raw imaging files matched by ``imaging.raw``, sorted by name."""
+        return sorted(Path(p) for p in glob.glob(self.imaging.raw, recursive=True))
+
+    def input_files(self) -> dict[str, list[Path]]:
+        """Raw inputs by group: ``imaging``, ``behaviour``, ``sync``."""
+        groups: dict[str, list[Path]] = {"imaging": self.raw_files(), "behaviour": [],
+                                         "sync": []}
+        if self.behaviour is not None:
+            groups["behaviour"].append(self.behaviour.log)
+        if self.sync.timestamps is not None:
+            groups["sync"].append(self.sync.timestamps)
+        if self.imaging.plane_timestamps is not None:
+            groups["sync"].append(self.imaging.plane_timestamps)
+        return groups
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain JSON-able dict of every section (paths as strings)."""
+        return {name: _plain(getattr(self, name)) for name in _SECTIONS}
+
+
+def _plain(obj: Any) -> Any:
+    if dataclasses.is_dataclass(obj) and not isinstance(obj, type):
+        return {f.name: _plain(getattr(obj, f.name)) for f in dataclasses.fields(obj)}
+    if isinstance(obj, MappingProxyType | dict):
+        return {str(k): _plain(v) for k, v in obj.items()}
+    if isinstance(obj, tuple | list):
+        return [_plain(v) for v in obj]
+    if isinstance(obj, Path):
+        return str(obj)
+    return obj
+
+
+def section_hash(settings: Settings, names: tuple[str, ...]) -> str:
+    """SHA-256 of the named sections' values, stable across runs and machines."""
+    data = {n: _plain(getattr(settings, n)) for n in sorted(names)}
+    text = json.dumps(data, sort_keys=True, default=str)
+    return hashlib.sha256(text.encode()).hexdigest()
+
+
+def parse_config(
+    table: dict[str, Any],
+    *,
+    base_dir: Path,
+    source: str = "<config>",
+    check_files: bool = True,
+) -> Settings:
+    """Build :class:`Settings` from a parsed TOML document.
+
+    Raises
+    ------
+    ConfigError
+        Unknown section or key, missing required key, bad value, or a glob that matches nothing.
+    """
+    for name in table:
+        if name not in _SECTIONS:
+            raise ConfigError(f"{source}: unknown section [{name}]{closest(name, _SECTIONS)}; "
+                              f"allowed sections: {', '.join(_SECTIONS)}")
+    for name in _REQUIRED:
+        if name not in table:
+            raise ConfigError(f"{source}: missing required section [{name}]")
+    parsed: dict[str, Any] = {}
+    for name, cls in _SECTIONS.items():
+        sub = table.get(name)
+        if sub is None:
+            parsed[name] = None if name == "behaviour" else cls()
+            continue
+        if not isinstance(sub, dict):
+            raise ConfigError(f"{source}: {name} = {sub!r}: expected a table [{name}]")
+        parsed[name] = parse_section(cls, sub, name, source=source, base_dir=base_dir,
+                                     check_files=check_files)
+    raw = parsed["imaging"].raw
+    if not Path(raw).is_absolute():
+        raw = str(base_dir / raw)
+    parsed["imaging"] = dataclasses.replace(parsed["imaging"], raw=raw)
+    settings = Settings(**parsed)
+    if check_files and not settings.raw_files():
+        raise ConfigError(f"{source}: imaging.raw = {table['imaging']['raw']!r}: the pattern "
+                          f"matches no file (looked for {raw})")
+    return settings
+
+
+def load_config(path: str | Path, *, check_files: bool = True) -> Settings:
+    """Read and check a TOML config file.
+
+    Parameters
+    ----------
+    path : str or Path
+        The config file; relative paths inside it resolve against its folder.
+    check_files : bool, default=True
+        Check that input files exist (turn off to inspect a config away from its data).
+
+    Raises
+    ------
+    ConfigError
+        The file is missing, is not valid TOML, or any value is bad.
+    """
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise ConfigError(f"config file {path} does not exist") from None
+    except UnicodeDecodeError as exc:
+        raise ConfigError(f"{path}: not a UTF-8 text file ({exc.reason} at byte {exc.start})"
+                          ) from None
+    try:
+        table = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"{path}: not valid TOML: {exc}") from None
+    settings = parse_config(table, base_dir=path.resolve().parent, source=str(path),
+                            check_files=check_files)
+    return dataclasses.replace(settings, source=path.resolve(), raw_toml=text)

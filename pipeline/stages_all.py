@@ -1,0 +1,24 @@
+"""Import every module that registers a stage, so :func:`pipeline.stages.registry` sees them.
+
+Add a new stage module here (the order of imports does not matter: the runner orders stages by
+their dependencies).
+"""
+
+from __future__ import annotations
+
+import importlib
+
+STAGE_MODULES = (
+    "pipeline.volumes.stages",
+    "pipeline.behaviour.stages",
+    "pipeline.align.stages",
+    "pipeline.analysis.stages",
+    "pipeline.report.stage",
+)
+
+for _name in STAGE_MODULES:
+    try:
+        importlib.import_module(_name)
+    except ModuleNotFoundError as _exc:  # a subpackage not written yet
+        if _exc.name != _name:
+            raise
