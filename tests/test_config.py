@@ -120,3 +120,11 @@ def test_shipped_configs_parse() -> None:
     for name in ("demo.toml", "template.toml"):
         s = load_config(root / name, check_files=False)
         assert s.session.output.name
+
+
+def test_template_documents_every_key() -> None:
+    from pipeline.config_template import render_template
+
+    shipped = (Path(__file__).resolve().parents[1] / "configs" / "template.toml").read_text()
+    assert shipped == render_template(), "run: python -m pipeline.config_template > " \
+        "configs/template.toml"
