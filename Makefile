@@ -31,7 +31,7 @@ test: lint
 	$(PY) -m pytest -q
 
 bench: $(STAMP)
-	$(PY) -m tests.benchmarks.run
+	$(PY) -m tests.benchmarks.run $(BENCH_ARGS)
 
 soak: $(STAMP)
 	FORKMAP_SOAK=1 $(PY) -m pytest -q tests/test_crash_resume.py
