@@ -18,7 +18,8 @@ $(STAMP): pyproject.toml | $(PY)
 venv: $(STAMP)
 
 demo: $(STAMP)
-	$(PY) -m demo_volume.generate --out $(DEMO) --preset default --seed 0 --cached
+	$(PY) -m demo_volume.generate --out $(DEMO) --preset default --seed 0 --check 2>/dev/null \
+	  || $(PY) -m demo_volume.generate --out $(DEMO) --preset default --seed 0
 	$(VENV)/bin/forkmap run configs/demo.toml
 	@echo "results: $$(pwd)/runs/demo"
 	@echo "report:  $$(pwd)/runs/demo/report/index.html"

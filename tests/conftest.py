@@ -12,3 +12,13 @@ SEED = 20261202
 def rng() -> np.random.Generator:
     """The suite's one random generator; every test that draws numbers takes it."""
     return np.random.default_rng(SEED)
+
+
+@pytest.fixture(scope="session")
+def demo_small_data(tmp_path_factory: pytest.TempPathFactory):
+    """The small demo preset, generated once per test session (both input layouts)."""
+    from demo_volume.generate import generate
+
+    out = tmp_path_factory.mktemp("demo-small")
+    generate(out, preset="small", seed=0, layout="both")
+    return out
