@@ -152,6 +152,9 @@ class MotionSettings:
     z_drift_fraction: float = _f(0.5, doc="flag |dz| above this fraction of a plane", gt=0.0)
     quality_mad: float = _f(5.0, doc="flag quality below median - k * MAD", gt=0.0)
     block_volumes: int = _f(8, doc="volumes per task", ge=1)
+    tukey_alpha: float = _f(0.25, doc="taper fraction of the analysis window", ge=0.0, le=1.0)
+    neighbourhood: Literal[26, 6, 8] = _f(
+        26, doc="local-correlation neighbours: 26 (cube), 6 (faces), 8 (same plane)")
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -162,6 +165,10 @@ class CellsSettings:
     threshold_mad: float = _f(4.0, doc="detection threshold: median + k * MAD of the filtered "
                               "image", gt=0.0)
     use_local_correlation: bool = _f(True, doc="combine mean and local-correlation images")
+    corr_weight: float = _f(0.5, doc="weight of the local-correlation image in the mix",
+                            ge=0.0, le=1.0)
+    tile_yx: tuple[int, int] = _f((256, 256), doc="core tile (y, x) of block-wise detection",
+                                  unit="voxel", ge=1)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -173,9 +180,20 @@ class TracesSettings:
                               gt=0.0)
     baseline_window_s: float = _f(60.0, doc="running-percentile baseline window", unit="s",
                                   gt=0.0)
-    baseline_percentile: float = _f(8.0, doc="percentile of the baseline", gt=0.0, lt=100.0)
+    baseline_percentile: float = _f(20.0, doc="percentile of the baseline", gt=0.0, lt=100.0)
+    ring_margin_um: float = _f(1.0, doc="ring voxels closer than this to any cell are left out",
+                               unit="um", ge=0.0)
+    ring_max_voxels: int = _f(400, doc="nearest ring voxels kept per cell", ge=1)
+    f0_floor: float = _f(1.0, doc="lower bound on the baseline F0", unit="counts", gt=0.0)
+    f0_floor_frac: float = _f(0.1, doc="lower bound on F0 as a fraction of the cell's median",
+                              ge=0.0)
     deconvolve: bool = _f(True, doc="OASIS deconvolution into events")
+    decay_s: float = _f(1.5, doc="indicator decay time constant (AR(1) model)", unit="s",
+                        gt=0.0)
+    event_min_sigma: float = _f(3.0, doc="smallest event, in noise sigmas", ge=0.0)
+    event_lam_sigma: float = _f(0.0, doc="L1 penalty on events, in noise sigmas", ge=0.0)
     block_volumes: int = _f(16, doc="volumes per extraction task", ge=1)
+    block_cells: int = _f(1024, doc="cells per dF/F and deconvolution task", ge=1)
 
     def check(self) -> str | None:
         if self.ring_outer_um <= self.ring_inner_um:
@@ -200,6 +218,8 @@ class DecodeSettings:
     pca_components: int = _f(0, doc="PCA components fitted within folds (0 = none)", ge=0)
     pre_bout_window_s: float = _f(1.0, doc="window before bout onset for bout-wise targets",
                                   unit="s", gt=0.0)
+    n_null_bouts: int = _f(20, doc="label permutations of the bout-wise decoders", ge=0)
+    seed: int = _f(0, doc="seed of the null permutations", ge=0)
 
     def check(self) -> str | None:
         if self.lag_max_s < self.lag_min_s:
@@ -222,6 +242,10 @@ class TuningSettings:
     min_shift_s: float = _f(20.0, doc="minimum circular shift", unit="s", ge=0.0)
     fdr_q: float = _f(0.05, doc="Benjamini-Hochberg level", gt=0.0, lt=1.0)
     block_cells: int = _f(4096, doc="cells per task", ge=1)
+    n_harmonics: int = _f(1, doc="harmonics of each bearing in the regression (2 = sharper "
+                          "tuning)", ge=1, le=4)
+    nuisance: bool = _f(True, doc="add turn and vigor as nuisance regressors")
+    seed: int = _f(0, doc="seed of the null permutations", ge=0)
 
 
 @dataclass(frozen=True, kw_only=True)
