@@ -61,6 +61,8 @@ class SessionSettings:
     description: str = _f("", doc="free text kept in the manifest and the NWB file")
     subject: str = _f("larva", doc="subject id for the NWB export")
     species: str = _f("Danio rerio", doc="species for the NWB export")
+    subject_age: str = _f("P6D", doc="subject age as an ISO 8601 duration (NWB), e.g. P6D")
+    subject_sex: Literal["M", "F", "U", "O"] = _f("U", doc="subject sex for NWB (U = unknown)")
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -84,6 +86,8 @@ class ImagingSettings:
     decay_s: float = _f(1.8, doc="indicator decay time constant", unit="s", gt=0.0)
     rise_s: float = _f(0.18, doc="indicator rise time", unit="s", gt=0.0)
     chunk_planes: int = _f(0, doc="planes per zarr chunk (0 = the whole volume)", ge=0)
+    drop_partial_volume: bool = _f(False, doc="drop an incomplete last volume with a warning "
+                                   "instead of failing")
     codec: Literal["lz4", "zstd", "none"] = _f("lz4", doc="Blosc codec (bitshuffled)")
     codec_level: int = _f(5, doc="Blosc compression level", ge=0, le=9)
     excitation_nm: float = _f(488.0, doc="excitation wavelength for NWB", unit="nm", gt=0.0)
@@ -127,6 +131,29 @@ class BehaviourSettings:
     angle_unit: Literal["rad", "deg"] = _f("rad", doc="unit of heading")
     max_gap_s: float = _f(0.05, doc="NaN runs up to this long are interpolated, longer fail",
                           unit="s", ge=0.0)
+    turn_threshold_rad_s: float = _f(0.2, doc="a turn event reaches this |turn rate|",
+                                     unit="rad/s", gt=0.0)
+    turn_release_rad_s: float = _f(0.02, doc="a turn event lasts while |turn rate| is above",
+                                   unit="rad/s", ge=0.0)
+    bout_min_duration_s: float = _f(0.02, doc="shorter turn events are dropped", unit="s",
+                                    ge=0.0)
+    bout_min_gap_s: float = _f(0.05, doc="same-sign turn events closer than this merge",
+                               unit="s", ge=0.0)
+    split_smooth_s: float = _f(0.5, doc="moving unit-vector average of heading for splits",
+                               unit="s", gt=0.0)
+    split_commit_level: float = _f(0.5, doc="normalised deviation of commitment to a target",
+                                   gt=0.0, le=1.0)
+    split_depart_level: float = _f(0.2, doc="normalised deviation where the split starts",
+                                   ge=0.0, lt=1.0)
+    split_min_commit_s: float = _f(1.0, doc="a commitment lasts this long (or to trial end)",
+                                   unit="s", gt=0.0)
+    split_max_lapse_s: float = _f(0.2, doc="shorter dips do not break a commitment",
+                                  unit="s", ge=0.0)
+    density_bin_mm: float = _f(0.5, doc="bin of the folded trajectory density map", unit="mm",
+                               gt=0.0)
+    bootstrap_resamples: int = _f(2000, doc="bootstrap resamples of the critical angle CI",
+                                  ge=100)
+    seed: int = _f(0, doc="seed of the critical-angle bootstrap", ge=0)
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -137,6 +164,15 @@ class SyncSettings:
     min_match_fraction: float = _f(0.9, doc="fail when fewer volumes match a pulse", gt=0.0,
                                    le=1.0)
     pulse_per: Literal["volume", "plane"] = _f("volume", doc="one pulse per volume or plane")
+    edge_time: Literal["midpoint", "first_high"] = _f(
+        "midpoint", doc="time of a sampled edge: halfway from the last low sample, or the "
+        "first high one")
+    match_tolerance: float = _f(0.25, doc="largest pulse-to-event distance, in event periods",
+                                gt=0.0, lt=0.5)
+    jump_threshold_ms: float = _f(20.0, doc="a residual step this large is a clock jump",
+                                  unit="ms", gt=0.0)
+    exposure_s: float | None = _f(None, doc="plane exposure window for resampling (default: "
+                                  "the plane period)", unit="s", gt=0.0)
 
 
 @dataclass(frozen=True, kw_only=True)

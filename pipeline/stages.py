@@ -41,6 +41,7 @@ class Stage:
     inputs: tuple[str, ...]
     resumable: bool
     enabled: Callable[[Settings], bool]
+    after_all: bool = False
 
 
 _REGISTRY: dict[str, Stage] = {}
@@ -48,7 +49,8 @@ _REGISTRY: dict[str, Stage] = {}
 
 def stage(name: str, *, requires: tuple[str, ...] = (), sections: tuple[str, ...] = (),
           inputs: tuple[str, ...] = (), resumable: bool = False,
-          enabled: Callable[[Settings], bool] | None = None) -> Callable[[StageFn], StageFn]:
+          enabled: Callable[[Settings], bool] | None = None,
+          after_all: bool = False) -> Callable[[StageFn], StageFn]:
     """Register a stage function.
 
     Parameters
@@ -66,11 +68,14 @@ def stage(name: str, *, requires: tuple[str, ...] = (), sections: tuple[str, ...
         Keep partial work in staging across an interrupted run (same config hash only).
     enabled : callable, optional
         ``settings -> bool``; a disabled stage is reported as "off" and not run.
+    after_all : bool, default=False
+        Run after every other stage and again whenever any of them changed, reading whatever
+        they wrote (the report); a stage that has not run is not an error for it.
     """
 
     def register(fn: StageFn) -> StageFn:
         _REGISTRY[name] = Stage(name, fn, tuple(requires), tuple(sections), tuple(inputs),
-                                resumable, enabled or (lambda s: True))
+                                resumable, enabled or (lambda s: True), after_all)
         return fn
 
     return register
@@ -95,7 +100,7 @@ def registry() -> dict[str, Stage]:
         seen.add(n)
         order.append(n)
 
-    for n in list(_REGISTRY):
+    for n in sorted(_REGISTRY, key=lambda n: _REGISTRY[n].after_all):
         visit(n, ())
     return {n: _REGISTRY[n] for n in order}
 
@@ -126,9 +131,11 @@ def _digest(obj: Any) -> str:
 
 def _expected(st: Stage, settings: Settings, inputs: dict[str, list[dict[str, Any]]],
               records: dict[str, str]) -> dict[str, Any]:
+    deps = [n for n in _REGISTRY if n != st.name and not _REGISTRY[n].after_all] \
+        if st.after_all else st.requires
     return {
         "config_hash": section_hash(settings, st.sections),
-        "inputs": {dep: records.get(dep, "") for dep in st.requires},
+        "inputs": {dep: records.get(dep, "") for dep in deps},
         "raw_inputs": {g: _digest([(r["name"], r["size"], r["sha256"]) for r in inputs.get(g, [])])
                        for g in st.inputs},
     }
@@ -141,15 +148,18 @@ def plan(settings: Settings, store: Store, *, inputs: dict[str, list[dict[str, A
     records = {}
     out = []
     stale_upstream: set[str] = set()
+    off: set[str] = set()
     for name, st in registry().items():
-        if not st.enabled(settings):
+        if not st.enabled(settings) or any(dep in off for dep in st.requires):
+            off.add(name)
             out.append((st, "off"))
             continue
         rec = store.record(name)
         exp = _expected(st, settings, inputs, records)
         if rec is None:
             state = "missing"
-        elif any(dep in stale_upstream for dep in st.requires) or any(
+        elif any(dep in stale_upstream for dep in (stale_upstream if st.after_all
+                                                    else st.requires)) or any(
                 rec.get(k) != v for k, v in exp.items()):
             state = "stale"
         else:
@@ -196,7 +206,7 @@ def run_stages(settings: Settings, *, only: str | None = None, from_stage: str |
                     done.append((st.name, "skipped (up to date)"))
                     continue
                 for dep in st.requires:
-                    if store.record(dep) is None:
+                    if store.record(dep) is None and not st.after_all:
                         raise StageError(f"stage {st.name!r} needs stage {dep!r}, which has not "
                                          f"run; run `forkmap run` without --only first")
                 seconds = _run_one(st, settings, store, compute, inputs)
@@ -221,7 +231,7 @@ def _downstream(name: str) -> set[str]:
 
 def _run_one(st: Stage, settings: Settings, store: Store, compute: Compute,
              inputs: dict[str, list[dict[str, Any]]]) -> float:
-    records = {n: (store.record(n) or {}).get("record_hash", "") for n in st.requires}
+    records = {n: (store.record(n) or {}).get("record_hash", "") for n in _REGISTRY}
     exp = _expected(st, settings, inputs, records)
     store.drop_record(st.name)  # from here until commit the stage is not done
     sub = store.stage_store(st.name, exp["config_hash"], resumable=st.resumable)

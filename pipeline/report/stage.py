@@ -363,7 +363,7 @@ def build_report(session: Session, out_dir: Path, *, n_raster_cells: int = 200,
     return path
 
 
-@stage("report", requires=(), sections=("report",), enabled=lambda s: s.report.enabled)
+@stage("report", sections=("report",), enabled=lambda s: s.report.enabled, after_all=True)
 def run_report(settings: Any, store: Any, compute: Any) -> None:
     """Stage function: write ``report/index.html`` (staged, moved into place on success)."""
     out = store.write_file("report")

@@ -1,0 +1,182 @@
+"""Stage ``motion``: rigid shifts, reference, quality, flags and the summary images.
+
+Three passes over the volumes, all through :meth:`Compute.map` with picklable tasks that open
+the zarr arrays themselves:
+
+1. the mean of the reference block (``motion.reference_start``, ``motion.reference_count``);
+2. the reference block registered to that mean and averaged again (the reference);
+3. every volume registered to the reference; the same task shifts each volume and adds it to a
+   :class:`~pipeline.volumes.summary.SummaryAccumulator`, so the mean and local-correlation
+   images come out of this pass without reading the volumes again.
+
+Outputs under ``session.zarr/motion``: ``shifts_vox`` and ``shifts_um`` (t, 3), ``quality``
+(t,), ``flags`` (t, 4) bool (columns in ``attrs["columns"]``), ``reference``, ``mean`` and
+``local_corr`` (z, y, x) float32.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+import zarr
+
+from pipeline.compute import Compute
+from pipeline.config import Settings
+from pipeline.errors import ConfigError
+from pipeline.stages import stage
+from pipeline.store import StageStore
+from pipeline.volumes.motion import (
+    prepare_reference,
+    register_volume,
+    registered_sum,
+    shift_volume,
+)
+from pipeline.volumes.motion_flags import MotionFlags, flag_motion
+from pipeline.volumes.summary import SummaryAccumulator
+
+__all__ = ["run_motion", "estimation_options", "volume_groups"]
+
+_TASKS_PER_WORKER = 4
+
+
+def estimation_options(settings: Settings) -> dict[str, Any]:
+    """:func:`prepare_reference` options from ``[motion]`` and the voxel size.
+
+    The high-pass acts in y and x only: planes are few and far apart, and a z high-pass would
+    remove most of the signal that fixes z. The search is limited to twice ``max_shift_um``.
+    """
+    m = settings.motion
+    vz, vy, vx = settings.imaging.voxel_size_um
+    return {
+        "bin_yx": m.bin_yx,
+        "highpass_sigma_vox": (0.0, m.highpass_sigma_um / vy, m.highpass_sigma_um / vx),
+        "tukey_alpha": m.tukey_alpha,
+        "max_shift_vox": tuple(2 * m.max_shift_um / v for v in (vz, vy, vx)),
+    }
+
+
+def volume_groups(start: int, stop: int, *, block: int, n_tasks: int) -> list[tuple[int, int]]:
+    """Split ``start..stop-1`` into at most ``n_tasks`` runs of at least ``block`` volumes."""
+    n = stop - start
+    if n <= 0:
+        return []
+    k = max(1, min(n_tasks, -(-n // max(1, block))))
+    edges = np.linspace(start, stop, k + 1).round().astype(int)
+    return [(int(a), int(b)) for a, b in zip(edges[:-1], edges[1:], strict=True) if b > a]
+
+
+def _get(arr: zarr.Array, key: Any = Ellipsis) -> np.ndarray:
+    return np.asarray(arr[key])
+
+
+def _block_sum(group: tuple[int, int], volumes_path: str) -> np.ndarray:
+    """Task: float64 sum of volumes ``start..stop-1``."""
+    arr = zarr.open_array(volumes_path, mode="r")
+    total = np.zeros(arr.shape[1:], dtype=np.float64)
+    for t in range(*group):
+        total += _get(arr, t)
+    return total
+
+
+def _block_registered_sum(group: tuple[int, int], volumes_path: str, reference_path: str,
+                          options: dict[str, Any], upsample: int) -> np.ndarray:
+    """Task: sum of volumes ``start..stop-1`` registered to the reference at ``reference_path``."""
+    arr = zarr.open_array(volumes_path, mode="r")
+    prep = prepare_reference(_get(zarr.open_array(reference_path, mode="r")), **options)
+    total, _s, _q = registered_sum((_get(arr, t) for t in range(*group)), prep,
+                                   upsample=upsample)
+    return total
+
+
+def _register_group(group: tuple[int, int], volumes_path: str, reference_path: str,
+                    options: dict[str, Any], upsample: int, neighbourhood: int,
+                    enabled: bool) -> tuple[np.ndarray, np.ndarray, SummaryAccumulator]:
+    """Task: shifts and quality of volumes ``start..stop-1`` and their summary accumulator."""
+    arr = zarr.open_array(volumes_path, mode="r")
+    reference = _get(zarr.open_array(reference_path, mode="r"))
+    prep = prepare_reference(reference, **options) if enabled else None
+    acc = SummaryAccumulator.empty(reference.shape, neighbourhood=neighbourhood,
+                                   offset=reference)
+    n = group[1] - group[0]
+    shifts = np.zeros((n, 3))
+    quality = np.ones(n)
+    for i, t in enumerate(range(*group)):
+        vol = _get(arr, t)
+        if prep is not None:
+            shifts[i], quality[i] = register_volume(vol, prep, upsample=upsample)
+            acc.update(shift_volume(vol, shifts[i]))
+        else:
+            acc.update(vol)
+    return shifts, quality, acc
+
+
+@stage("motion", requires=("ingest",), sections=("imaging", "motion"))
+def run_motion(settings: Settings, store: StageStore, compute: Compute) -> None:
+    """Estimate rigid motion, build the reference, flag outliers, fill the summary images."""
+    m = settings.motion
+    vox = np.asarray(settings.imaging.voxel_size_um, dtype=float)
+    vol = store.volumes()
+    T = int(vol.shape[0])
+    if m.reference_start >= T:
+        raise ConfigError(f"motion.reference_start = {m.reference_start}: the session has only "
+                          f"{T} volumes")
+    ref_stop = min(T, m.reference_start + m.reference_count)
+    if ref_stop - m.reference_start < m.reference_count:
+        store.warn(f"reference block shortened to volumes {m.reference_start}..{ref_stop - 1} "
+                   f"(motion.reference_count = {m.reference_count}, {T} volumes)")
+    vpath = store.volumes_path
+    opts = estimation_options(settings)
+    n_tasks = _TASKS_PER_WORKER * compute.n_workers
+    ref_groups = volume_groups(m.reference_start, ref_stop, block=m.block_volumes,
+                               n_tasks=n_tasks)
+    n_ref = ref_stop - m.reference_start
+    sums = compute.map(_block_sum, ref_groups, vpath, desc="motion: reference mean")
+    reference = (np.sum(sums, axis=0) / n_ref).astype(np.float32)
+    store.write_array("motion/reference", reference, attrs={"unit": "camera counts"},
+                      dimension_names=("z", "y", "x"))
+    ref_path = store.staged_array_path("motion/reference")
+    if m.enabled:
+        sums = compute.map(_block_registered_sum, ref_groups, vpath, ref_path, opts, m.upsample,
+                           desc="motion: reference refine")
+        reference = (np.sum(sums, axis=0) / n_ref).astype(np.float32)
+        store.write_array("motion/reference", reference, attrs={"unit": "camera counts"},
+                          dimension_names=("z", "y", "x"))
+    groups = volume_groups(0, T, block=m.block_volumes, n_tasks=n_tasks)
+    results = compute.map(_register_group, groups, vpath, ref_path, opts, m.upsample,
+                          m.neighbourhood, m.enabled, desc="motion: register")
+    shifts = np.concatenate([r[0] for r in results])
+    quality = np.concatenate([r[1] for r in results])
+    acc = results[0][2]
+    for r in results[1:]:
+        acc.merge(r[2])
+    mean, local_corr = acc.finalize()
+    flags = flag_motion(shifts, quality, voxel_size_um=tuple(vox), max_shift_um=m.max_shift_um,
+                        z_drift_fraction=m.z_drift_fraction, quality_mad=m.quality_mad)
+    _write(store, shifts, quality, flags, mean, local_corr, vox)
+    counts = flags.counts()
+    for name, k in counts.items():
+        if k:
+            store.warn(f"{k} of {T} volumes flagged '{name}'")
+    store.set_info({"reference_volumes": [m.reference_start, ref_stop],
+                    "flag_counts": counts, "median_quality": float(np.median(quality)),
+                    "max_shift_um": float(np.linalg.norm(shifts * vox, axis=1).max()),
+                    "enabled": m.enabled})
+
+
+def _write(store: StageStore, shifts: np.ndarray, quality: np.ndarray, flags: MotionFlags,
+           mean: np.ndarray, local_corr: np.ndarray, vox: np.ndarray) -> None:
+    axes = ("t", "axis")
+    store.write_array("motion/shifts_vox", shifts, dimension_names=axes,
+                      attrs={"unit": "voxel", "axes": ["z", "y", "x"],
+                             "convention": "volume_t(r) = reference(r - shift)"})
+    store.write_array("motion/shifts_um", shifts * vox[None, :], dimension_names=axes,
+                      attrs={"unit": "um", "axes": ["z", "y", "x"]})
+    store.write_array("motion/quality", quality, dimension_names=("t",),
+                      attrs={"doc": "correlation peak relative to perfect alignment, 0..1"})
+    store.write_array("motion/flags", flags.as_array(), dimension_names=("t", "flag"),
+                      attrs={"columns": list(MotionFlags.NAMES)})
+    store.write_array("motion/mean", mean, dimension_names=("z", "y", "x"),
+                      attrs={"unit": "camera counts", "doc": "mean of registered volumes"})
+    store.write_array("motion/local_corr", local_corr, dimension_names=("z", "y", "x"),
+                      attrs={"doc": "correlation of each voxel with its neighbours' mean"})

@@ -1,0 +1,122 @@
+"""Summary-image accumulators (pipeline.volumes.summary)."""
+
+from __future__ import annotations
+
+import itertools
+
+import numpy as np
+import pytest
+
+from pipeline.errors import ConfigError
+from pipeline.volumes.summary import SummaryAccumulator, neighbour_mean
+
+SHAPE = (3, 4, 5)
+
+
+def _offsets(neighbourhood: int) -> list[tuple[int, int, int]]:
+    cube = [d for d in itertools.product((-1, 0, 1), repeat=3) if d != (0, 0, 0)]
+    if neighbourhood == 26:
+        return cube
+    if neighbourhood == 8:
+        return [d for d in cube if d[0] == 0]
+    return [d for d in cube if sum(map(abs, d)) == 1]
+
+
+def _direct_local_corr(stack: np.ndarray, neighbourhood: int) -> np.ndarray:
+    """Pearson correlation of each voxel with its neighbours' mean, voxel by voxel."""
+    t, nz, ny, nx = stack.shape
+    out = np.zeros((nz, ny, nx))
+    for z, y, x in itertools.product(range(nz), range(ny), range(nx)):
+        nbrs = [stack[:, z + dz, y + dy, x + dx] for dz, dy, dx in _offsets(neighbourhood)
+                if 0 <= z + dz < nz and 0 <= y + dy < ny and 0 <= x + dx < nx]
+        # reference: numpy.corrcoef (Pearson correlation)
+        out[z, y, x] = np.corrcoef(stack[:, z, y, x], np.mean(nbrs, axis=0))[0, 1]
+    return out
+
+
+@pytest.mark.parametrize("neighbourhood", [26, 6, 8])
+def test_local_correlation_matches_direct_computation(rng: np.random.Generator,
+                                                      neighbourhood: int) -> None:
+    common = rng.normal(0, 1, (40, 1, 1, 1))
+    stack = 100 + rng.normal(0, 1, (40, *SHAPE)) + common * rng.uniform(0, 2, SHAPE)
+    acc = SummaryAccumulator.empty(SHAPE, neighbourhood=neighbourhood)
+    for vol in stack:
+        acc.update(vol)
+    mean, corr = acc.finalize()
+    np.testing.assert_allclose(mean, stack.mean(0), rtol=1e-6)
+    np.testing.assert_allclose(corr, _direct_local_corr(stack, neighbourhood), atol=1e-5)
+
+
+def test_merged_blocks_equal_one_pass(rng: np.random.Generator) -> None:
+    stack = rng.normal(500, 20, (30, *SHAPE))
+    offset = stack[:5].mean(0)
+    one = SummaryAccumulator.empty(SHAPE, offset=offset)
+    for v in stack:
+        one.update(v)
+    blocks = []
+    for start in (0, 7, 19):  # blocks of unequal size, merged out of order
+        acc = SummaryAccumulator.empty(SHAPE, offset=offset)
+        for v in stack[start:{0: 7, 7: 19, 19: 30}[start]]:
+            acc.update(v)
+        blocks.append(acc)
+    merged = blocks[2].merge(blocks[0]).merge(blocks[1])
+    assert merged.n == one.n == 30
+    for a, b in zip(merged.finalize(), one.finalize(), strict=True):
+        np.testing.assert_allclose(a, b, rtol=1e-6, atol=1e-6)
+
+
+def test_offset_does_not_change_the_images(rng: np.random.Generator) -> None:
+    stack = rng.normal(3000, 5, (25, *SHAPE)) + rng.normal(0, 3, (25, 1, 1, 1))
+    plain = SummaryAccumulator.empty(SHAPE)
+    shifted = SummaryAccumulator.empty(SHAPE, offset=stack[0])
+    for v in stack:
+        plain.update(v)
+        shifted.update(v)
+    for a, b in zip(plain.finalize(), shifted.finalize(), strict=True):
+        np.testing.assert_allclose(a, b, rtol=1e-5, atol=1e-4)
+
+
+def test_planted_active_cell_stands_out(rng: np.random.Generator) -> None:
+    shape = (3, 12, 12)
+    stack = rng.normal(100, 2, (60, *shape))
+    activity = np.abs(rng.normal(0, 1, 60)).cumsum() % 7  # a slow, varying signal
+    stack[:, 1, 5:8, 5:8] += 4 * activity[:, None, None]   # a 3x3 "cell" in plane 1
+    acc = SummaryAccumulator.empty(shape, neighbourhood=8)
+    for v in stack:
+        acc.update(v)
+    _, corr = acc.finalize()
+    assert corr[1, 6, 6] > 0.9
+    assert np.median(corr[0]) < 0.3
+
+
+def test_constant_voxels_give_zero_correlation() -> None:
+    acc = SummaryAccumulator.empty(SHAPE)
+    for _ in range(3):
+        acc.update(np.full(SHAPE, 7.0))
+    mean, corr = acc.finalize()
+    assert np.all(corr == 0) and np.all(mean == 7.0)
+
+
+def test_neighbour_mean_of_a_ramp() -> None:
+    ramp = np.arange(5.0)[None, None, :] * np.ones((3, 3, 1))
+    nb = neighbour_mean(ramp, neighbourhood=6)
+    # interior: mean of x-1, x+1 and four equal values = x (a linear function is harmonic)
+    np.testing.assert_allclose(nb[1, 1, 1:-1], ramp[1, 1, 1:-1])
+
+
+def test_errors(rng: np.random.Generator) -> None:
+    with pytest.raises(ConfigError, match=r"neighbourhood = 18"):
+        SummaryAccumulator.empty(SHAPE, neighbourhood=18)
+    with pytest.raises(ConfigError, match=r"neighbourhood = 4"):
+        neighbour_mean(np.zeros(SHAPE), neighbourhood=4)
+    with pytest.raises(ConfigError, match=r"offset has shape \(3, 4\)"):
+        SummaryAccumulator.empty(SHAPE, offset=np.zeros((3, 4)))
+    acc = SummaryAccumulator.empty(SHAPE)
+    with pytest.raises(ConfigError, match=r"volume has shape \(3, 4, 4\); expected \(3, 4, 5\)"):
+        acc.update(np.zeros((3, 4, 4)))
+    with pytest.raises(ConfigError, match="no volume accumulated"):
+        acc.finalize()
+    with pytest.raises(ConfigError, match=r"cannot merge accumulators of shape \(2, 4, 5\)"):
+        acc.merge(SummaryAccumulator.empty((2, 4, 5)))
+    with pytest.raises(ConfigError, match="different offsets"):
+        acc.merge(SummaryAccumulator.empty(SHAPE, offset=np.ones(SHAPE)))
