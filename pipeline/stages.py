@@ -223,7 +223,8 @@ def _downstream(name: str) -> set[str]:
     while changed:
         changed = False
         for n, st in reg.items():
-            if n not in out and any(d == name or d in out for d in st.requires):
+            if n not in out and (st.after_all or any(d == name or d in out
+                                                     for d in st.requires)):
                 out.add(n)
                 changed = True
     return out

@@ -45,6 +45,11 @@ def _c(settings, store, compute):
     store.write_json("c.json", {"sum": float(y.sum()), "diameter": settings.cells.diameter_um})
 
 
+def _r(settings, store, compute):
+    CALLS.append("r")
+    store.write_json("r.json", {"stages_seen": sorted(store.manifest()["stages"])})
+
+
 @pytest.fixture
 def toy_stages() -> Iterator[None]:
     stages.registry()  # make sure the real stages are imported once, then swap them out
@@ -53,6 +58,7 @@ def toy_stages() -> Iterator[None]:
     stages.stage("a", sections=("imaging",), inputs=("imaging",))(_a)
     stages.stage("b", requires=("a",), sections=("motion",))(_b)
     stages.stage("c", requires=("b",), sections=("cells",))(_c)
+    stages.stage("r", sections=("report",), after_all=True)(_r)
     CALLS.clear()
     yield
     stages._REGISTRY.clear()
@@ -66,7 +72,7 @@ def _run(cfg: Path, **kw):
 def test_rerun_skips_and_change_reruns_downstream(tmp_path: Path, toy_stages: None) -> None:
     cfg = write_config(tmp_path)
     _run(cfg)
-    assert CALLS == ["a", "b", "c"]
+    assert CALLS == ["a", "b", "c", "r"]
     out = tmp_path / "out"
     assert json.loads((out / "c.json").read_text())["sum"] == pytest.approx(2 * 2 * 20 * 4)
     CALLS.clear()
@@ -74,14 +80,14 @@ def test_rerun_skips_and_change_reruns_downstream(tmp_path: Path, toy_stages: No
     assert CALLS == [] and result["b"].startswith("skipped")
     cfg = write_config(tmp_path, "\n[motion]\nupsample = 3\n")
     _run(cfg)
-    assert CALLS == ["b", "c"]  # a is untouched by [motion]
+    assert CALLS == ["b", "c", "r"]  # a is untouched by [motion]; the report always follows
     assert json.loads((out / "c.json").read_text())["sum"] == pytest.approx(2 * 2 * 3 * 4)
     CALLS.clear()
     cfg = write_config(tmp_path, "\n[motion]\nupsample = 3\n[cells]\ndiameter_um = 5.0\n")
     _run(cfg)
-    assert CALLS == ["c"]
+    assert CALLS == ["c", "r"]
     rows = {r["stage"]: r["state"] for r in stages.status_rows(load_config(cfg))}
-    assert rows == {"a": "done", "b": "done", "c": "done"}
+    assert rows == {"a": "done", "b": "done", "c": "done", "r": "done"}
 
 
 def test_changed_raw_input_reruns_ingest_like_stage(tmp_path: Path, toy_stages: None) -> None:
@@ -91,7 +97,7 @@ def test_changed_raw_input_reruns_ingest_like_stage(tmp_path: Path, toy_stages: 
     (tmp_path / "raw" / "vol_00001.tif").write_bytes(b"changed content")
     assert {r["stage"]: r["state"] for r in stages.status_rows(load_config(cfg))}["a"] == "stale"
     _run(cfg)
-    assert CALLS == ["a", "b", "c"]
+    assert CALLS == ["a", "b", "c", "r"]
 
 
 def test_failure_leaves_no_record_and_no_output(tmp_path: Path, toy_stages: None) -> None:
@@ -109,19 +115,19 @@ def test_failure_leaves_no_record_and_no_output(tmp_path: Path, toy_stages: None
     assert np.allclose(store.read_array("b/y")[:], 2 * 2 * 20)
     assert not (out / ".forkmap.lock").exists()
     states = {r["stage"]: r["state"] for r in stages.status_rows(load_config(bad))}
-    assert states == {"a": "done", "b": "missing", "c": "stale"}
+    assert states == {"a": "done", "b": "missing", "c": "stale", "r": "stale"}
 
 
 def test_only_and_from(tmp_path: Path, toy_stages: None) -> None:
     cfg = write_config(tmp_path)
     with pytest.raises(StageError, match=r"stage 'b' needs stage 'a', which has not run"):
         _run(cfg, only="b")
-    with pytest.raises(StageError, match=r"--only 'zz': no such stage; stages are a, b, c"):
+    with pytest.raises(StageError, match=r"--only 'zz': no such stage; stages are a, b, c, r"):
         _run(cfg, only="zz")
     _run(cfg)
     CALLS.clear()
     _run(cfg, from_stage="b")
-    assert CALLS == ["b", "c"]
+    assert CALLS == ["b", "c", "r"]
     CALLS.clear()
     _run(cfg, only="a", force=True)
     assert CALLS == ["a"]
@@ -138,7 +144,7 @@ def test_lock_refuses_second_runner(tmp_path: Path, toy_stages: None) -> None:
     lock.write_text(json.dumps({"pid": 2**22 + 12345, "host": os.uname().nodename,
                                 "since": "then"}))
     _run(cfg)
-    assert CALLS == ["a", "b", "c"] and not lock.exists()
+    assert CALLS == ["a", "b", "c", "r"] and not lock.exists()
 
 
 def test_manifest_records_inputs_and_versions(tmp_path: Path, toy_stages: None) -> None:
