@@ -1,0 +1,413 @@
+"""Bearing tuning of single cells, target by target, before and after the split.
+
+Two views of each cell, per target and epoch:
+
+* descriptive: an occupancy-normalised tuning curve against the target's egocentric bearing,
+  the preferred bearing and selectivity of its mean resultant vector, and a von Mises fit;
+* inferential: a linear model of the cell's activity on ``cos``/``sin`` of *every* target's
+  bearing together (plus nuisance regressors such as turn and vigor). Target ``k``'s unique
+  explained variance is ``R^2(full) - R^2(full without k)``, which equals
+  ``||W_k^T y||^2 / ||y||^2`` with ``W_k`` an orthonormal basis of target ``k``'s columns
+  after projecting out all other columns. Its null keeps each cell's autocorrelation: the
+  behaviour rows are permuted by whole trials (or circularly shifted) against the activity.
+
+Because ``W_k`` depends only on behaviour, every permutation's bases for every target are
+stacked into one matrix ``B`` and the statistic for all cells and all permutations is the
+column-pair sums of squares of one GEMM ``B^T Y`` per block of cells. This is the whole cost
+of the null, and it runs at BLAS speed (see ``tests/benchmarks/bench_tuning.py``).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+
+import numpy as np
+from scipy.optimize import curve_fit
+
+from pipeline.analysis.stats import bh_qvalues, binomial_interval, circular_mean, resultant_length
+from pipeline.errors import InputError
+
+__all__ = [
+    "EPOCHS",
+    "epoch_masks",
+    "tuning_curves",
+    "curve_preference",
+    "VonMisesFit",
+    "fit_von_mises",
+    "bearing_design",
+    "UniqueVariance",
+    "unique_variance_test",
+    "tuned_flags",
+    "population_summary",
+]
+
+EPOCHS = ("pre", "between", "post")
+
+
+def epoch_masks(trial_ids, splits, *, pre, post):
+    """Samples of each epoch around the split(s) of every trial.
+
+    Parameters
+    ----------
+    trial_ids : ndarray of shape (n_samples,)
+        Trial of each sample (samples of a trial contiguous).
+    splits : mapping or ndarray of shape (n_trials, n_splits)
+        Split sample index per trial, keyed (mapping) or ordered (array) by the sorted unique
+        trial ids; NaN or negative marks a missing split. With two splits (three targets)
+        there is a ``between`` epoch.
+    pre, post : int
+        Samples before the first split and after the last split.
+
+    Returns
+    -------
+    dict of str to ndarray of bool
+        ``pre``, ``between`` (only with two splits) and ``post``; trials without a split
+        contribute nothing.
+    """
+    trial_ids = np.asarray(trial_ids)
+    trials = np.unique(trial_ids)
+    if isinstance(splits, dict):
+        rows = [np.atleast_1d(np.asarray(splits.get(t, np.nan), dtype=np.float64))
+                for t in trials]
+        width = max(r.size for r in rows)
+        sp = np.full((trials.size, width), np.nan)
+        for i, r in enumerate(rows):
+            sp[i, : r.size] = r
+    else:
+        sp = np.asarray(splits, dtype=np.float64).reshape(len(splits), -1)
+        if sp.shape[0] != trials.size:
+            raise InputError(f"splits: expected one row per trial ({trials.size} trials), got "
+                             f"{sp.shape[0]} rows")
+    idx = np.arange(trial_ids.size)
+    masks = {"pre": np.zeros(idx.size, bool), "post": np.zeros(idx.size, bool)}
+    if sp.shape[1] >= 2:
+        masks["between"] = np.zeros(idx.size, bool)
+    for t, row in zip(trials, sp, strict=True):
+        row = row[np.isfinite(row) & (row >= 0)]
+        if row.size == 0:
+            continue
+        inside = trial_ids == t
+        first, last = row.min(), row.max()
+        masks["pre"] |= inside & (idx >= first - pre) & (idx < first)
+        masks["post"] |= inside & (idx >= last) & (idx < last + post)
+        if "between" in masks and row.size >= 2:
+            masks["between"] |= inside & (idx >= first) & (idx < last)
+    return {k: masks[k] for k in EPOCHS if k in masks}
+
+
+def _bin_edges(n_bins):
+    return np.linspace(-np.pi, np.pi, n_bins + 1)
+
+
+def tuning_curves(activity, bearing_rad, *, n_bins=12, min_count=1):
+    """Occupancy-normalised mean activity per bearing bin.
+
+    Parameters
+    ----------
+    activity : ndarray of shape (n_samples, n_cells)
+    bearing_rad : ndarray of shape (n_samples,)
+        Egocentric bearing of one target, in (-pi, pi].
+    n_bins : int, default=12
+    min_count : int, default=1
+        Bins with fewer samples are NaN.
+
+    Returns
+    -------
+    curves : ndarray of shape (n_bins, n_cells)
+    counts : ndarray of shape (n_bins,)
+    centres_rad : ndarray of shape (n_bins,)
+    """
+    b = np.asarray(bearing_rad, dtype=np.float64)
+    edges = _bin_edges(n_bins)
+    which = np.clip(np.searchsorted(edges, b, side="right") - 1, 0, n_bins - 1)
+    ok = np.isfinite(b)
+    onehot = np.zeros((b.size, n_bins), dtype=np.float64)
+    onehot[np.flatnonzero(ok), which[ok]] = 1.0
+    counts = onehot.sum(axis=0)
+    sums = onehot.T @ np.asarray(activity, dtype=np.float64)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        curves = sums / counts[:, None]
+    curves[counts < max(min_count, 1)] = np.nan
+    return curves, counts, 0.5 * (edges[:-1] + edges[1:])
+
+
+def curve_preference(curves, centres_rad):
+    """Preferred bearing and selectivity from the curve-weighted mean resultant vector.
+
+    Weights are each curve minus its minimum over occupied bins (so a constant offset does not
+    dilute selectivity); empty bins weigh nothing.
+
+    Returns
+    -------
+    preferred_rad, selectivity : ndarray of shape (n_cells,)
+
+    References
+    ----------
+    Zar JH (2010). Biostatistical Analysis, 5th ed., chapter 26 (grouped data).
+    """
+    c = np.asarray(curves, dtype=np.float64)
+    all_nan = np.all(~np.isfinite(c), axis=0)
+    low = np.nanmin(np.where(all_nan[None, :], 0.0, c), axis=0)
+    w = np.nan_to_num(c - low, nan=0.0)
+    ang = np.broadcast_to(np.asarray(centres_rad)[:, None], w.shape)
+    pref = circular_mean(ang, weights=w, axis=0)
+    sel = resultant_length(ang, weights=w, axis=0)
+    return np.where(all_nan, np.nan, pref), np.nan_to_num(sel, nan=0.0)
+
+
+@dataclasses.dataclass
+class VonMisesFit:
+    """Least-squares fit of ``amplitude * exp(kappa * (cos(theta - mu) - 1)) + baseline``."""
+
+    mu_rad: float
+    kappa: float
+    amplitude: float
+    baseline: float
+    mu_se_rad: float
+    kappa_se: float
+    success: bool
+
+
+def _vm(theta, mu, kappa, amplitude, baseline):
+    return amplitude * np.exp(kappa * (np.cos(theta - mu) - 1.0)) + baseline
+
+
+def fit_von_mises(centres_rad, values, *, max_kappa=50.0):
+    """Fit a von Mises-shaped tuning curve by bounded nonlinear least squares.
+
+    The curve is written with ``exp(kappa (cos - 1))`` so ``amplitude`` is the peak above
+    ``baseline`` (the same family as ``a exp(kappa cos) + b`` with ``a = amplitude e^-kappa``).
+    Standard errors come from the Jacobian at the optimum (``scipy.optimize.curve_fit``).
+
+    Parameters
+    ----------
+    centres_rad : ndarray of shape (n_bins,)
+    values : ndarray of shape (n_bins,)
+        A tuning curve (NaN bins ignored).
+    max_kappa : float, default=50.0
+
+    Returns
+    -------
+    VonMisesFit
+
+    References
+    ----------
+    Mardia KV, Jupp PE (2000). Directional Statistics. Wiley, section 3.5.4 (von Mises).
+    Swindale NV (1998). Orientation tuning curves: empirical description and estimation of
+    parameters. Biol Cybern 78:45-56. doi:10.1007/s004220050411
+    """
+    x = np.asarray(centres_rad, dtype=np.float64)
+    v = np.asarray(values, dtype=np.float64)
+    ok = np.isfinite(v)
+    x, v = x[ok], v[ok]
+    if x.size < 5:
+        return VonMisesFit(np.nan, np.nan, np.nan, np.nan, np.nan, np.nan, False)
+    mu0 = float(circular_mean(x, weights=v - v.min())) if np.ptp(v) > 0 else 0.0
+    p0 = [mu0, 1.0, max(float(np.ptp(v)), 1e-9), float(v.min())]
+    lower = [mu0 - 2 * np.pi, 0.0, 0.0, -np.inf]
+    upper = [mu0 + 2 * np.pi, max_kappa, np.inf, np.inf]
+    try:
+        popt, pcov = curve_fit(_vm, x, v, p0=p0, bounds=(lower, upper), maxfev=5000)
+    except (RuntimeError, ValueError):
+        return VonMisesFit(np.nan, np.nan, np.nan, np.nan, np.nan, np.nan, False)
+    se = np.sqrt(np.clip(np.diag(pcov), 0, None)) if np.all(np.isfinite(pcov)) else \
+        np.full(4, np.nan)
+    mu = float(np.angle(np.exp(1j * popt[0])))
+    return VonMisesFit(mu, float(popt[1]), float(popt[2]), float(popt[3]), float(se[0]),
+                       float(se[1]), True)
+
+
+def bearing_design(bearings_rad, *, n_harmonics=1):
+    """Columns ``cos(h b_k), sin(h b_k)`` for every target ``k`` and harmonic ``h``.
+
+    Returns
+    -------
+    ndarray of shape (n_samples, n_targets, 2 * n_harmonics)
+    """
+    b = np.asarray(bearings_rad, dtype=np.float64)
+    cols = []
+    for h in range(1, int(n_harmonics) + 1):
+        cols += [np.cos(h * b), np.sin(h * b)]
+    return np.stack(cols, axis=-1)
+
+
+def _orth(a):
+    q, r = np.linalg.qr(a)
+    d = np.abs(np.diag(r))
+    return q[:, d > max(d.max(initial=0.0), 1e-300) * 1e-10]
+
+
+def _unique_bases(target_cols, nuisance):
+    """Orthonormal basis of each target's columns after removing every other column.
+
+    Batched over permutations with small Gram matrices (all work is stacked ``matmul``):
+    ``target_cols`` (P, n, K, m) and ``nuisance`` (P, n, q) or None; returns (P, n, K, m),
+    zero columns where a target has no variance left.
+    """
+    p_, n, k, m = target_cols.shape
+    centred = target_cols - target_cols.mean(axis=1, keepdims=True)
+    nuis = (np.zeros((p_, n, 0)) if nuisance is None
+            else nuisance - nuisance.mean(axis=1, keepdims=True))
+    out = np.zeros((p_, n, k, m))
+    for j in range(k):
+        own = centred[:, :, j]                                           # (P, n, m)
+        others = np.concatenate(
+            [centred[:, :, [i for i in range(k) if i != j]].reshape(p_, n, -1), nuis], axis=2)
+        if others.shape[2]:
+            gram = others.transpose(0, 2, 1) @ others
+            coef = np.linalg.pinv(gram, hermitian=True) @ (others.transpose(0, 2, 1) @ own)
+            own = own - others @ coef
+        lam, vec = np.linalg.eigh(own.transpose(0, 2, 1) @ own)          # (P, m), (P, m, m)
+        tol = lam.max(axis=1, keepdims=True) * 1e-10 + 1e-300
+        inv_sqrt = np.where(lam > tol, 1.0 / np.sqrt(np.where(lam > tol, lam, 1.0)), 0.0)
+        out[:, :, j] = own @ (vec * inv_sqrt[:, None, :])
+    return out
+
+
+@dataclasses.dataclass
+class UniqueVariance:
+    """Per target and cell: unique R^2, its permutation p-value, and the regression bearing."""
+
+    unique_r2: np.ndarray       # (n_targets, n_cells)
+    p: np.ndarray               # (n_targets, n_cells)
+    full_r2: np.ndarray         # (n_cells,)
+    bearing_rad: np.ndarray     # (n_targets, n_cells) phase of the first-harmonic coefficients
+    n_permutations: int
+
+
+def unique_variance_test(activity, bearings_rad, *, perm_index, nuisance=None, n_harmonics=1,
+                         block_cells=4096, dtype=np.float32):
+    """Unique variance of each target's bearing and its permutation p-value, for all cells.
+
+    Parameters
+    ----------
+    activity : ndarray of shape (n_samples, n_cells)
+        Activity of cells sampled at one plane's times (the behaviour below must be sampled at
+        the same times).
+    bearings_rad : ndarray of shape (n_samples, n_targets)
+    perm_index : ndarray of int, shape (n_permutations, n_samples)
+        Behaviour row order of each permutation (``trial_shuffle_indices`` or
+        ``circular_shift_indices``).
+    nuisance : ndarray of shape (n_samples, n_nuisance), optional
+        Regressors every model keeps (turn command, vigor...); permuted with the bearings.
+    n_harmonics : int, default=1
+        Harmonics of each bearing; 2 captures sharper, von Mises-like tuning.
+    block_cells : int, default=4096
+        Cells per GEMM block (memory: ``(n_perm + 1) * n_targets * 2h * block_cells`` floats).
+    dtype : numpy dtype, default=float32
+        Precision of the permutation GEMM.
+
+    Returns
+    -------
+    UniqueVariance
+
+    References
+    ----------
+    Freedman D, Lane D (1983). A nonstochastic interpretation of reported significance
+    levels. J Bus Econ Stat 1:292-298 (permutation tests in regression).
+    Phipson B, Smyth GK (2010). Stat Appl Genet Mol Biol 9:39.
+    Golub GH, Van Loan CF (2013). Matrix Computations, 4th ed., section 5.2 (QR; the explained
+    sum of squares is ``||Q^T y||^2``).
+    """
+    y_all = np.asarray(activity)
+    b = np.asarray(bearings_rad, dtype=np.float64)
+    n = y_all.shape[0]
+    if b.ndim != 2 or b.shape[0] != n:
+        raise InputError(f"bearings_rad: expected shape ({n}, n_targets), got {b.shape}")
+    perm_index = np.asarray(perm_index)
+    if perm_index.ndim != 2 or perm_index.shape[1] != n:
+        raise InputError(f"perm_index: expected shape (n_permutations, {n}), got "
+                         f"{perm_index.shape}")
+    cols = bearing_design(b, n_harmonics=n_harmonics)
+    nuis = None if nuisance is None else np.asarray(nuisance, dtype=np.float64).reshape(n, -1)
+    n_t, m = cols.shape[1], cols.shape[2]
+    n_perm = perm_index.shape[0]
+    orders = np.vstack([np.arange(n)[None, :], perm_index])
+    stack = np.empty((n, n_perm + 1, n_t, m), dtype=dtype)
+    step = max(1, int(2**24 // (n * n_t * m * 8)))            # ~16 MB of float64 bases per batch
+    for a in range(0, n_perm + 1, step):
+        order = orders[a: a + step]
+        bases = _unique_bases(cols[order], None if nuis is None else nuis[order])
+        stack[:, a: a + order.shape[0]] = bases.transpose(1, 0, 2, 3)
+    base0 = _unique_bases(cols[None], None if nuis is None else nuis[None])[0].reshape(n, -1)
+    stack2 = stack.reshape(n, -1)
+    full_x = np.concatenate([cols.reshape(n, -1)] + ([] if nuis is None else [nuis]), axis=1)
+    full_x = full_x - full_x.mean(axis=0)
+    q_full = _orth(full_x)
+    pinv = np.linalg.pinv(full_x)
+    n_cells = y_all.shape[1]
+    uniq = np.empty((n_t, n_cells))
+    pval = np.empty((n_t, n_cells))
+    full_r2 = np.empty(n_cells)
+    bear = np.empty((n_t, n_cells))
+    for a in range(0, n_cells, int(block_cells)):
+        sl = slice(a, min(a + int(block_cells), n_cells))
+        y = np.asarray(y_all[:, sl], dtype=np.float64)
+        y = y - y.mean(axis=0)
+        sst = np.sum(y * y, axis=0)
+        proj = stack2.T @ y.astype(dtype, copy=False)           # the GEMM
+        proj *= proj
+        ss = proj.reshape(n_perm + 1, n_t, m, -1).sum(axis=2)
+        obs_gemm = ss[0]
+        # a tiny relative tolerance so float32 rounding never turns ties into exceedances
+        exceed = np.sum(ss[1:] >= obs_gemm[None] * (1 - 1e-5), axis=0)
+        obs = np.sum((base0.T @ y).reshape(n_t, m, -1) ** 2, axis=1)
+        with np.errstate(invalid="ignore", divide="ignore"):
+            uniq[:, sl] = np.where(sst > 0, obs / sst, 0.0)
+            full_r2[sl] = np.where(sst > 0, np.sum((q_full.T @ y) ** 2, axis=0) / sst, 0.0)
+        pval[:, sl] = (1.0 + exceed) / (n_perm + 1.0)
+        coef = (pinv @ y)[: n_t * m].reshape(n_t, m, -1)
+        bear[:, sl] = np.arctan2(coef[:, 1], coef[:, 0])
+    return UniqueVariance(uniq, pval, full_r2, bear, n_perm)
+
+
+def tuned_flags(p, *, q=0.05):
+    """BH q-values across cells (last axis) and the tuned flags ``q_value <= q``.
+
+    Parameters
+    ----------
+    p : ndarray of shape (..., n_cells)
+        One family per leading index (target, epoch).
+
+    References
+    ----------
+    Benjamini Y, Hochberg Y (1995). J R Stat Soc B 57:289-300.
+    """
+    qv = bh_qvalues(p, axis=-1)
+    return qv, np.isfinite(qv) & (qv <= q)
+
+
+def population_summary(tuned, *, targets, epochs, confidence=0.95):
+    """Fractions of tuned cells per target and epoch, and cells that switch across the split.
+
+    Parameters
+    ----------
+    tuned : ndarray of bool, shape (n_targets, n_epochs, n_cells)
+    targets, epochs : sequence of str
+
+    Returns
+    -------
+    rows : list of dict
+        ``target, epoch, n_tuned, n_cells, fraction, ci_low, ci_high`` (Wilson interval).
+    switches : dict
+        ``switched`` (tuned before and after, to different target sets), ``gained``, ``lost``
+        and ``kept`` counts, comparing the first and the last epoch.
+    """
+    tuned = np.asarray(tuned, dtype=bool)
+    n_cells = tuned.shape[-1]
+    rows = []
+    for i, t in enumerate(targets):
+        for j, e in enumerate(epochs):
+            k = int(tuned[i, j].sum())
+            lo, hi = binomial_interval(k, n_cells, confidence=confidence)
+            rows.append({"target": t, "epoch": e, "n_tuned": k, "n_cells": n_cells,
+                         "fraction": k / n_cells if n_cells else np.nan,
+                         "ci_low": float(lo), "ci_high": float(hi)})
+    before, after = tuned[:, 0], tuned[:, -1]
+    any_b, any_a = before.any(axis=0), after.any(axis=0)
+    same = np.all(before == after, axis=0)
+    switches = {"switched": int(np.sum(any_b & any_a & ~same)),
+                "kept": int(np.sum(any_b & any_a & same)),
+                "gained": int(np.sum(~any_b & any_a)), "lost": int(np.sum(any_b & ~any_a)),
+                "from_epoch": epochs[0], "to_epoch": epochs[-1]}
+    return rows, switches

@@ -1,0 +1,188 @@
+"""Turn decoders: ridge path against scikit-learn, planted premotor lead, chance on nulls."""
+
+from __future__ import annotations
+
+import json
+
+import numpy as np
+import pytest
+from sklearn.decomposition import PCA
+from sklearn.linear_model import LogisticRegression, Ridge, RidgeCV
+from sklearn.model_selection import cross_val_score
+from sklearn.pipeline import make_pipeline
+from sklearn.preprocessing import StandardScaler
+from sklearn.utils.estimator_checks import parametrize_with_checks
+
+from pipeline.analysis.cv import BlockedKFold
+from pipeline.analysis.decode import (
+    bout_windows,
+    decode_bouts,
+    decode_continuous,
+    lag_samples,
+    lagged_targets,
+)
+from pipeline.analysis.ridge import RidgePathCV, path_scores
+from pipeline.errors import ConfigError, InputError
+
+RATE_HZ = 2.0
+LEAD = 4                       # samples by which the premotor units lead the turn
+
+
+def _session(rng, n=600, n_cells=80, n_premotor=20, planted=True):
+    """Sparse signed turns, smoothed; premotor cells carry the turn LEAD samples early."""
+    onsets = np.sort(rng.choice(np.arange(20, n - 20), 60, replace=False))
+    amp = rng.choice([-1.0, 1.0], 60) * rng.uniform(0.5, 1.5, 60)
+    turn = np.zeros(n)
+    turn[onsets] = amp
+    turn = np.convolve(turn, [1.0, 0.6, 0.3])[:n]
+    X = rng.normal(size=(n, n_cells))
+    if planted:
+        X[:, :n_premotor] += np.roll(turn, -LEAD)[:, None] * rng.normal(size=n_premotor)
+    trials = np.repeat(np.arange(10), n // 10)
+    return X.astype(np.float32), turn, onsets, amp, trials
+
+
+@parametrize_with_checks([RidgePathCV(alphas=(0.1, 10.0))])
+def test_sklearn_compatible_estimator(estimator, check):
+    check(estimator)
+
+
+@pytest.mark.parametrize("n_cells", [15, 200])          # primal and dual (cells > samples)
+@pytest.mark.parametrize("standardize", [False, True])
+def test_ridge_path_equals_sklearn_cross_val_score(rng, n_cells, standardize):
+    X = rng.normal(size=(120, n_cells)) * rng.uniform(0.5, 3, n_cells)
+    y = X[:, :3].sum(axis=1) + rng.normal(size=120)
+    folds = list(BlockedKFold(4, gap=3).split(X))
+    alphas = [0.01, 1.0, 100.0, 1e4]
+    ours = np.array([path_scores(X, y[:, None], tr, te, alphas=alphas,
+                                 standardize=standardize)[0][:, 0] for tr, te in folds])
+    for i, alpha in enumerate(alphas):
+        est = make_pipeline(StandardScaler(), Ridge(alpha=alpha)) if standardize else \
+            Ridge(alpha=alpha)
+        # reference: sklearn.model_selection.cross_val_score with the same folds
+        ref = cross_val_score(est, X, y, cv=folds)
+        np.testing.assert_allclose(ours[:, i], ref, atol=1e-8)
+
+
+def test_truncated_spectrum_equals_pca_then_ridge(rng):
+    X = rng.normal(size=(90, 30))
+    y = X[:, 0] - X[:, 1] + rng.normal(size=90)
+    folds = list(BlockedKFold(3).split(X))
+    ours = np.array([path_scores(X, y[:, None], tr, te, alphas=[3.0], n_components=5)[0][0, 0]
+                     for tr, te in folds])
+    # reference: scikit-learn Pipeline(StandardScaler, PCA(5), Ridge) fitted within each fold
+    ref = cross_val_score(make_pipeline(StandardScaler(), PCA(5), Ridge(alpha=3.0)), X, y,
+                          cv=folds)
+    np.testing.assert_allclose(ours, ref, atol=1e-8)
+
+
+def test_ridgepathcv_chooses_like_ridgecv(rng):
+    X = rng.normal(size=(150, 12))
+    y = X @ rng.normal(size=12) + 2.0 * rng.normal(size=150)
+    alphas = (0.1, 3.0, 30.0, 300.0)
+    ours = RidgePathCV(alphas=alphas, cv=BlockedKFold(5), standardize=False).fit(X, y)
+    # reference: sklearn.linear_model.RidgeCV with the same splitter (mean fold R^2)
+    ref = RidgeCV(alphas=alphas, cv=BlockedKFold(5)).fit(X, y)
+    assert ours.alpha_ == ref.alpha_
+    np.testing.assert_allclose(ours.coef_, ref.coef_, atol=1e-8)
+    assert ours.intercept_ == pytest.approx(ref.intercept_, abs=1e-8)
+
+
+def test_ridgepathcv_errors(rng):
+    with pytest.raises(ConfigError, match="positive penalties"):
+        RidgePathCV(alphas=(0.0, 1.0)).fit(rng.normal(size=(20, 2)), rng.normal(size=20))
+    with pytest.raises(InputError, match="too few for 5 inner folds"):
+        RidgePathCV().fit(rng.normal(size=(6, 2)), rng.normal(size=6))
+
+
+def test_lagged_targets_and_lag_samples():
+    lags = lag_samples(lag_min_s=-1.0, lag_max_s=0.5, rate_hz=RATE_HZ)
+    np.testing.assert_array_equal(lags, [-2, -1, 0, 1])
+    y = np.arange(10.0)
+    Y, valid = lagged_targets(y, lags)
+    t = np.flatnonzero(valid)
+    np.testing.assert_array_equal(t, np.arange(1, 8))
+    for j, lag in enumerate(lags):
+        np.testing.assert_array_equal(Y[t, j], y[t - lag])
+    with pytest.raises(InputError, match="holds no sample"):
+        lag_samples(lag_min_s=0.1, lag_max_s=0.2, rate_hz=RATE_HZ)
+
+
+def test_bout_windows_against_loop(rng):
+    X = rng.normal(size=(50, 4))
+    onsets = np.array([3, 20, 47])
+    F, ok = bout_windows(X, onsets, window=3, lags=np.array([-2, 0, 4]))
+    np.testing.assert_array_equal(ok, [False, True, False])
+    for i, lag in enumerate([-2, 0, 4]):
+        np.testing.assert_allclose(F[i, 1], X[20 + lag - 3: 20 + lag].mean(axis=0))
+    with pytest.raises(InputError, match="at least 1 sample"):
+        bout_windows(X, onsets, window=0, lags=np.array([0]))
+
+
+def test_planted_lead_recovered(rng):
+    X, turn, _, _, trials = _session(rng)
+    lags = lag_samples(lag_min_s=-5, lag_max_s=2, rate_hz=RATE_HZ)
+    res = decode_continuous(X, turn, lags=lags, rate_hz=RATE_HZ, n_null=40, gap=6,
+                            trial_ids=trials, seed=1)
+    # planted lead of LEAD samples: peak within one sample
+    assert abs(res.r2.best_lag_s * RATE_HZ + LEAD) <= 1
+    assert res.r2.mean.max() > 0.3
+    assert res.null_kind == "trial-shuffle"
+    assert res.r2.earliest_lag_s is not None and res.r2.earliest_lag_s <= res.r2.best_lag_s
+    assert res.r2.p[np.argmax(res.r2.mean)] == pytest.approx(1 / 41)
+    # the weights single out the premotor units
+    assert np.abs(res.weights[:20]).mean() > 4 * np.abs(res.weights[20:]).mean()
+    json.dumps(res.to_dict(), allow_nan=False)
+
+
+def test_shuffled_targets_score_at_chance(rng):
+    X, turn, _, _, _ = _session(rng, n=400, planted=False)
+    lags = np.array([-4, 0])
+    res = decode_continuous(X, turn, lags=lags, rate_hz=RATE_HZ, n_null=20, gap=6,
+                            min_shift=40)
+    # no planted signal: cross-validated R^2 is at most zero (common practice)
+    assert np.all(res.r2.mean <= 0.0)
+    assert res.null_kind == "circular-shift"
+
+
+def test_bouts_planted_and_chance(rng):
+    X, _, onsets, amp, trials = _session(rng)
+    res = decode_bouts(X, onsets, amp > 0, lags=np.array([-3]), rate_hz=RATE_HZ, window=2,
+                       angle=amp, trial_of_bout=trials[onsets])
+    # window [onset - 5, onset - 3) holds the premotor copy of the turn: AUC > 0.8
+    assert res.auc.mean[0] > 0.8
+    assert res.angle_r2 is not None and res.angle_r2.mean[0] > 0.3
+    json.dumps(res.to_dict(), allow_nan=False)
+    fast = LogisticRegression(C=0.1, max_iter=1000)
+    with_null = decode_bouts(X, onsets, amp > 0, lags=np.array([-3]), rate_hz=RATE_HZ,
+                             window=2, classifier=fast, n_null=9, trial_of_bout=trials[onsets])
+    # planted signal beats every one of 9 trial shuffles: p = 1 / (9 + 1) (Phipson & Smyth)
+    assert with_null.auc.p[0] == pytest.approx(0.1)
+    aucs = []
+    gen = np.random.default_rng(7)
+    for _ in range(12):
+        labels = gen.permutation(amp > 0)
+        aucs.append(decode_bouts(X, onsets, labels, lags=np.array([-3]), rate_hz=RATE_HZ,
+                                 window=2, classifier=fast).auc.mean[0])
+    # shuffled labels: AUC at chance, 0.5 +- 0.05 over repeats (common practice)
+    assert abs(np.mean(aucs) - 0.5) < 0.05
+
+
+def test_decode_errors(rng):
+    X = rng.normal(size=(30, 3))
+    with pytest.raises(InputError, match=r"expected X \(n_samples, n_cells\)"):
+        decode_continuous(X, np.zeros(29), lags=np.array([0]), rate_hz=1.0, n_null=0)
+    with pytest.raises(InputError, match="samples remain after trimming"):
+        decode_continuous(X, np.zeros(30), lags=np.array([-12, 12]), rate_hz=1.0, n_null=0)
+    with pytest.raises(InputError, match="usable bouts"):
+        decode_bouts(X, np.array([5, 10, 15]), np.array([1, 0, 1]), lags=np.array([0]),
+                     rate_hz=1.0, window=2)
+
+
+def test_without_null_p_is_missing(rng):
+    X = rng.normal(size=(200, 10))
+    res = decode_continuous(X, rng.normal(size=200), lags=np.array([-2, 0]), rate_hz=1.0,
+                            n_null=0)
+    assert res.null_kind == "none" and np.all(np.isnan(res.r2.p))
+    assert res.r2.earliest_lag_s is None
+    json.dumps(res.to_dict(), allow_nan=False)

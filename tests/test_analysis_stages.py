@@ -1,0 +1,138 @@
+"""The decode and tuning stages on a small synthetic store, against the kernels run eagerly."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+
+from pipeline.analysis.decode import decode_continuous, lag_samples
+from pipeline.analysis.stages import ALIGN, run_decode, run_tuning
+from pipeline.analysis.stats import trial_shuffle_indices
+from pipeline.analysis.tuning import epoch_masks, unique_variance_test
+from pipeline.compute import Compute
+from pipeline.config import ComputeSettings, parse_config
+from pipeline.errors import StoreError
+from pipeline.session import decode_table
+from pipeline.store import Store
+
+RATE_HZ, N_TRIALS, TRIAL_LEN, N_PLANES = 2.0, 12, 60, 2
+
+
+def _settings(tmp_path: Path):
+    table = {"session": {"output": str(tmp_path / "out")},
+             "imaging": {"raw": "*.tif", "voxel_size_um": [2.0, 1.0, 1.0],
+                         "volume_rate_hz": RATE_HZ, "planes_per_volume": N_PLANES},
+             "decode": {"lag_min_s": -2.0, "lag_max_s": 0.0, "n_null": 5, "n_folds": 3,
+                        "alphas": [1.0, 100.0], "n_null_bouts": 0},
+             "tuning": {"n_permutations": 499, "pre_window_s": 15.0, "post_window_s": 15.0,
+                        "min_occupancy_s": 0.0}}
+    return parse_config(table, base_dir=tmp_path, check_files=False)
+
+
+def _prepare(rng, settings):
+    n = N_TRIALS * TRIAL_LEN
+    n_cells = 40
+    trial = np.repeat(np.arange(N_TRIALS), TRIAL_LEN)
+    bearing = np.angle(np.exp(1j * np.cumsum(rng.normal(0, 0.4, (n, 1, 2)), axis=0)))
+    bearing = np.repeat(bearing, N_PLANES, axis=1)
+    turn = np.repeat(np.convolve(rng.normal(size=n), np.ones(3) / 3, "same")[:, None],
+                     N_PLANES, axis=1)
+    act = rng.normal(size=(n_cells, n)).astype(np.float32)
+    act[:5] += np.roll(turn[:, 0], -2)[None, :]
+    act[10:15] += np.cos(bearing[:, 0, 0] - 1.0)[None, :].astype(np.float32) * 2
+    base = Store(settings.session.output)
+    prep = base.stage_store("prep", "x", resumable=False)
+    prep.write_array("traces/dff", act)
+    prep.write_array(ALIGN["turn"], turn)
+    prep.write_array(ALIGN["trial"], np.repeat(trial[:, None], N_PLANES, axis=1))
+    prep.write_array(ALIGN["bearing"], bearing)
+    prep.write_array(ALIGN["volume_start"], np.arange(n) / RATE_HZ)
+    prep.write_table("cells.parquet", pd.DataFrame({
+        "id": np.arange(1, n_cells + 1), "plane": np.arange(n_cells) % N_PLANES,
+        "z_um": 0.0, "y_um": 1.0, "x_um": 2.0}))
+    splits_s = (np.arange(N_TRIALS) * TRIAL_LEN + 30) / RATE_HZ
+    prep.write_table("splits.parquet", pd.DataFrame({"trial": np.arange(N_TRIALS),
+                                                     "split_s": splits_s}))
+    onsets = np.sort(rng.choice(np.arange(10, n - 10), 48, replace=False))
+    prep.write_table("bouts.parquet", pd.DataFrame({
+        "onset_s": onsets / RATE_HZ, "angle_rad": turn[onsets, 0],
+        "direction": np.where(turn[onsets, 0] > 0, "left", "right"), "trial": trial[onsets]}))
+    labels = np.zeros((N_PLANES, 8, 8), np.int32)
+    labels.reshape(-1)[np.arange(n_cells) * 3] = np.arange(1, n_cells + 1)
+    prep.create_labels(labels, voxel_size_um=(2.0, 1.0, 1.0))
+    prep.commit()
+    return base, act, turn, trial, bearing
+
+
+@pytest.mark.parametrize("out_of_core", [False, True])
+def test_decode_stage_matches_kernel(rng, tmp_path, monkeypatch, out_of_core):
+    if out_of_core:                    # read the activity block by block from zarr
+        monkeypatch.setattr("pipeline.analysis.stages.IN_MEMORY_BYTES", 0)
+    settings = _settings(tmp_path)
+    base, act, turn, trial, _ = _prepare(rng, settings)
+    sub = base.stage_store("decode", "h", resumable=False)
+    with Compute(ComputeSettings(workers=1), quiet=True) as compute:
+        run_decode(settings, sub, compute)
+    sub.commit()
+    doc = json.loads((base.root / "decode.json").read_text())
+    ds = settings.decode
+    eager = decode_continuous(act.T, turn.mean(axis=1),
+                              lags=lag_samples(lag_min_s=-2.0, lag_max_s=0.0, rate_hz=RATE_HZ),
+                              rate_hz=RATE_HZ, alphas=ds.alphas, n_splits=3, gap=doc["gap_samples"],
+                              trial_ids=trial, n_null=5)
+    np.testing.assert_allclose(doc["turn_r2"]["mean"], eager.r2.mean, atol=1e-10)
+    np.testing.assert_allclose(base.read_array("decode/weights")[...], eager.weights, rtol=1e-5)
+    assert doc["turn_r2"]["best_lag_s"] == -1.0            # planted lead of 2 samples
+    assert doc["n_bouts"] > 0 and len(doc["bout_auc"]["mean"]) == len(doc["bout_auc"]["lags_s"])
+    # the results API reads it back as one row per (decoder, lag)
+    df = decode_table(doc)
+    assert {"turn_r2", "turn_r", "bout_auc"} <= set(df["decoder"])
+    np.testing.assert_allclose(df.query("decoder == 'turn_r2'")["mean"], eager.r2.mean)
+
+
+def test_tuning_stage_matches_kernel(rng, tmp_path):
+    settings = _settings(tmp_path)
+    base, act, turn, trial, bearing = _prepare(rng, settings)
+    sub = base.stage_store("tuning", "h", resumable=False)
+    with Compute(ComputeSettings(workers=1), quiet=True) as compute:
+        run_tuning(settings, sub, compute)
+    sub.commit()
+    table = pd.read_parquet(base.root / "tuning.parquet")
+    assert {"cell", "target", "epoch", "preferred_rad", "selectivity", "unique_r2", "p", "q",
+            "tuned", "z_um"} <= set(table.columns)
+    masks = epoch_masks(trial, np.arange(N_TRIALS) * TRIAL_LEN + 30, pre=30, post=30)
+    m = masks["pre"]
+    rows = np.flatnonzero(np.arange(40) % N_PLANES == 0)
+    nuis = turn[m][:, [0]]
+    eager = unique_variance_test(act[rows].T[m], bearing[m, 0],
+                                 perm_index=trial_shuffle_indices(trial[m], 499, seed=0),
+                                 nuisance=nuis)
+    got = table.query("epoch == 'pre' and target == 't0'").set_index("cell")
+    np.testing.assert_allclose(got.loc[rows + 1, "p"], eager.p[0], atol=1e-12)
+    tuned_cells = set(table.query("tuned and target == 't0'")["cell"])
+    assert set(range(11, 16)) <= tuned_cells
+    # the map holds each tuned cell's preferred bearing at its label voxels
+    painted = base.read_array("tuning/preferred_rad")[...]
+    labels = base.labels()[...]
+    t0_pre = painted[0, 0]
+    for cell in (11, 12):
+        assert np.all(t0_pre[labels == cell] == np.float32(got.loc[cell, "preferred_rad"]))
+    assert np.all(np.isnan(t0_pre[labels == 0]))
+
+
+def test_tuning_stage_needs_trials(rng, tmp_path):
+    settings = _settings(tmp_path)
+    base = Store(settings.session.output)
+    prep = base.stage_store("prep", "x", resumable=False)
+    prep.write_array("traces/dff", np.zeros((2, 10), np.float32))
+    prep.write_array(ALIGN["bearing"], np.zeros((10, 2, 2)))
+    prep.write_table("cells.parquet", pd.DataFrame({"id": [1, 2], "plane": [0, 1]}))
+    prep.commit()
+    sub = base.stage_store("tuning", "h", resumable=False)
+    with pytest.raises(StoreError, match="align/trial is missing"), \
+            Compute(ComputeSettings(workers=1), quiet=True) as compute:
+        run_tuning(settings, sub, compute)

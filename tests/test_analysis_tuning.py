@@ -1,0 +1,194 @@
+"""Bearing tuning: curves, von Mises fits, unique variance with calibrated nulls."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import scipy.stats
+from sklearn.linear_model import LinearRegression
+from statsmodels.stats.proportion import proportion_confint
+
+from pipeline.analysis.stats import circular_shift_indices, trial_shuffle_indices
+from pipeline.analysis.tuning import (
+    curve_preference,
+    epoch_masks,
+    fit_von_mises,
+    population_summary,
+    tuned_flags,
+    tuning_curves,
+    unique_variance_test,
+)
+from pipeline.errors import InputError
+
+N_TRIALS, TRIAL_LEN, SPLIT_AT = 20, 120, 60
+
+
+def _wrap(a):
+    return np.angle(np.exp(1j * a))
+
+
+def _behaviour(rng):
+    """Two targets; target 1's bearing is correlated with target 0's (r of cos ~ 0.5)."""
+    def walk(n, step=0.35):
+        return _wrap(rng.uniform(-np.pi, np.pi) + np.cumsum(rng.normal(0, step, n)))
+    b0 = np.concatenate([walk(TRIAL_LEN) for _ in range(N_TRIALS)])
+    b1 = _wrap(b0 + 0.6 + 0.5 * np.concatenate([walk(TRIAL_LEN) for _ in range(N_TRIALS)]))
+    trials = np.repeat(np.arange(N_TRIALS), TRIAL_LEN)
+    splits = SPLIT_AT + np.arange(N_TRIALS) * TRIAL_LEN
+    return np.column_stack([b0, b1]), trials, splits
+
+
+def test_epoch_masks():
+    trials = np.repeat([0, 1], 10)
+    m = epoch_masks(trials, np.array([[4, 7], [13, np.nan]]), pre=3, post=2)
+    assert list(m) == ["pre", "between", "post"]
+    np.testing.assert_array_equal(np.flatnonzero(m["pre"]), [1, 2, 3, 10, 11, 12])
+    np.testing.assert_array_equal(np.flatnonzero(m["between"]), [4, 5, 6])
+    np.testing.assert_array_equal(np.flatnonzero(m["post"]), [7, 8, 13, 14])
+    m2 = epoch_masks(trials, {0: 5.0}, pre=2, post=2)
+    assert list(m2) == ["pre", "post"] and m2["pre"].sum() == 2
+    with pytest.raises(InputError, match="one row per trial"):
+        epoch_masks(trials, np.array([5.0]), pre=2, post=2)
+
+
+def test_tuning_curves_against_binned_statistic(rng):
+    b = rng.uniform(-np.pi, np.pi, 500)
+    act = rng.normal(size=(500, 3))
+    curves, counts, centres = tuning_curves(act, b, n_bins=12, min_count=50)
+    # reference: scipy.stats.binned_statistic (mean per bin)
+    ref = scipy.stats.binned_statistic(b, act[:, 0], "mean", bins=np.linspace(-np.pi, np.pi, 13))
+    ok = counts >= 50
+    np.testing.assert_allclose(curves[ok, 0], ref.statistic[ok])
+    assert np.all(np.isnan(curves[~ok]))
+    assert centres[0] == pytest.approx(-np.pi + np.pi / 12)
+
+
+@pytest.mark.parametrize(("mu", "kappa"), [(1.0, 2.0), (-2.5, 5.0)])
+def test_von_mises_fit_recovers_scipy_samples(rng, mu, kappa):
+    # reference: scipy.stats.vonmises draws; their histogram is a von Mises density
+    x = scipy.stats.vonmises.rvs(kappa, loc=mu, size=20000, random_state=rng)
+    hist, edges = np.histogram(_wrap(x), bins=36, range=(-np.pi, np.pi), density=True)
+    fit = fit_von_mises(0.5 * (edges[1:] + edges[:-1]), hist)
+    assert fit.success
+    assert abs(_wrap(fit.mu_rad - mu)) < 0.05
+    assert fit.kappa == pytest.approx(kappa, rel=0.1)
+    assert 0 < fit.mu_se_rad < 0.05
+    # the peak height of the density is exp(kappa) / (2 pi I0(kappa)) (von Mises density)
+    peak = np.exp(kappa) / (2 * np.pi * scipy.special.i0(kappa))
+    assert fit.amplitude + fit.baseline == pytest.approx(peak, rel=0.05)
+
+
+def test_von_mises_fit_too_few_bins():
+    assert not fit_von_mises(np.arange(3.0), np.ones(3)).success
+
+
+def test_curve_preference_of_planted_cell(rng):
+    b = rng.uniform(-np.pi, np.pi, 4000)
+    act = np.exp(2 * np.cos(b - 0.8))[:, None] + 0.1 * rng.normal(size=(4000, 1))
+    curves, _, centres = tuning_curves(act, b, n_bins=18)
+    pref, sel = curve_preference(curves, centres)
+    assert abs(_wrap(pref[0] - 0.8)) < np.radians(5)
+    assert 0.3 < sel[0] < 1
+
+
+def test_unique_variance_matches_nested_regressions(rng):
+    bearings, _, _ = _behaviour(rng)
+    n = bearings.shape[0]
+    nuis = rng.normal(size=(n, 2))
+    y = np.cos(bearings[:, 0] - 1) + 0.5 * nuis[:, 0] + rng.normal(size=n)
+    res = unique_variance_test(y[:, None], bearings, nuisance=nuis,
+                               perm_index=np.zeros((0, n), int), dtype=np.float64)
+    cols = [np.cos(bearings), np.sin(bearings)]
+    full = np.column_stack(cols + [nuis])
+    # reference: sklearn LinearRegression R^2 of the full and the reduced models
+    r2_full = LinearRegression().fit(full, y).score(full, y)
+    for k in range(2):
+        reduced = np.delete(full, [k, 2 + k], axis=1)
+        r2_red = LinearRegression().fit(reduced, y).score(reduced, y)
+        assert res.unique_r2[k, 0] == pytest.approx(r2_full - r2_red, abs=1e-10)
+    assert res.full_r2[0] == pytest.approx(r2_full, abs=1e-10)
+
+
+def _null_activity(rng, n, n_cells, phi):
+    e = rng.normal(size=(n, n_cells))
+    out = np.empty_like(e)
+    out[0] = e[0]
+    for t in range(1, n):
+        out[t] = phi * out[t - 1] + e[t]
+    return out.astype(np.float32)
+
+
+@pytest.mark.parametrize("phi", [0.0, 0.95])           # white noise and drifting AR(1) noise
+def test_calibration_on_untuned_cells(rng, phi):
+    bearings, trials, splits = _behaviour(rng)
+    act = _null_activity(rng, bearings.shape[0], 2000, phi)
+    m = epoch_masks(trials, splits, pre=60, post=60)["pre"]
+    perms = trial_shuffle_indices(trials[m], 199, seed=4)
+    res = unique_variance_test(act[m], bearings[m], perm_index=perms)
+    _, tuned = tuned_flags(res.p, q=0.05)
+    # pure noise: at most 5% flagged at q = 0.05 (BH controls FDR; common practice)
+    assert tuned.mean() <= 0.05
+    # and the p-values are calibrated: P(p <= 0.05) near 0.05
+    assert np.mean(res.p <= 0.05) < 0.075
+
+
+def test_circular_shift_null_runs(rng):
+    bearings, trials, _ = _behaviour(rng)
+    act = _null_activity(rng, bearings.shape[0], 300, 0.0)
+    perms = circular_shift_indices(act.shape[0], 99, min_shift=240, seed=2)
+    res = unique_variance_test(act, bearings, perm_index=perms)
+    assert np.mean(res.p <= 0.05) < 0.1
+
+
+def test_planted_tuned_cells_found_with_right_target_and_epoch(rng):
+    bearings, trials, splits = _behaviour(rng)
+    n = bearings.shape[0]
+    masks = epoch_masks(trials, splits, pre=60, post=60)
+    n_null, n_tuned = 600, 100
+    mu = rng.uniform(-np.pi, np.pi, n_tuned)
+    act = rng.normal(size=(n, n_null + n_tuned)).astype(np.float32)
+    pre = masks["pre"]
+    act[pre, n_null:] += 1.5 * np.exp(2 * (np.cos(bearings[pre, 0:1] - mu) - 1))
+    flags, bear, curve_pref = [], None, None
+    for name in ("pre", "post"):
+        m = masks[name]
+        perms = trial_shuffle_indices(trials[m], 299, seed=9)
+        res = unique_variance_test(act[m], bearings[m], perm_index=perms)
+        flags.append(tuned_flags(res.p, q=0.05)[1])
+        if name == "pre":
+            bear = res.bearing_rad[0, n_null:]
+            curves, _, centres = tuning_curves(act[m][:, n_null:], bearings[m, 0])
+            curve_pref = curve_preference(curves, centres)[0]
+    tuned = np.stack(flags, axis=1)               # (target, epoch, cell)
+    truth = np.zeros_like(tuned)
+    truth[0, 0, n_null:] = True
+    sensitivity = tuned[truth].mean()
+    fdr = (tuned & ~truth).sum() / max(tuned.sum(), 1)
+    assert sensitivity >= 0.9
+    assert fdr <= 0.05
+    # preferred bearing within 20 degrees (both the regression phase and the curve vector)
+    assert np.degrees(np.abs(_wrap(bear - mu))).max() < 20
+    assert np.degrees(np.abs(_wrap(curve_pref - mu))).max() < 20
+
+
+def test_population_summary():
+    tuned = np.zeros((2, 2, 10), bool)
+    tuned[0, 0, :4] = True          # 4 cells tuned to t0 before
+    tuned[1, 1, 2:5] = True         # cells 2-4 tuned to t1 after
+    tuned[0, 1, 3] = True
+    rows, sw = population_summary(tuned, targets=["t0", "t1"], epochs=["pre", "post"])
+    r = rows[0]
+    assert (r["target"], r["epoch"], r["n_tuned"]) == ("t0", "pre", 4)
+    # reference: statsmodels proportion_confint(method="wilson")
+    lo, hi = proportion_confint(4, 10, method="wilson")
+    assert (r["ci_low"], r["ci_high"]) == pytest.approx((lo, hi))
+    assert sw == {"switched": 2, "kept": 0, "gained": 1, "lost": 2, "from_epoch": "pre",
+                  "to_epoch": "post"}
+
+
+def test_unique_variance_errors(rng):
+    act = rng.normal(size=(50, 2))
+    with pytest.raises(InputError, match=r"bearings_rad: expected shape \(50, n_targets\)"):
+        unique_variance_test(act, np.zeros(50), perm_index=np.zeros((1, 50), int))
+    with pytest.raises(InputError, match=r"perm_index: expected shape \(n_permutations, 50\)"):
+        unique_variance_test(act, np.zeros((50, 2)), perm_index=np.zeros((1, 49), int))
