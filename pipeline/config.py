@@ -139,16 +139,12 @@ class BehaviourSettings:
                                     ge=0.0)
     bout_min_gap_s: float = _f(0.05, doc="same-sign turn events closer than this merge",
                                unit="s", ge=0.0)
-    split_smooth_s: float = _f(0.5, doc="moving unit-vector average of heading for splits",
-                               unit="s", gt=0.0)
-    split_commit_level: float = _f(0.5, doc="normalised deviation of commitment to a target",
-                                   gt=0.0, le=1.0)
-    split_depart_level: float = _f(0.2, doc="normalised deviation where the split starts",
-                                   ge=0.0, lt=1.0)
-    split_min_commit_s: float = _f(1.0, doc="a commitment lasts this long (or to trial end)",
-                                   unit="s", gt=0.0)
-    split_max_lapse_s: float = _f(0.2, doc="shorter dips do not break a commitment",
-                                  unit="s", ge=0.0)
+    split_resample_s: float = _f(0.1, doc="sample step of the split segmentation", unit="s",
+                                 gt=0.0)
+    split_penalty_s: float = _f(0.1, doc="loss a split must save (s of 90 deg disagreement)",
+                                unit="s", ge=0.0)
+    split_snap_max_s: float = _f(0.5, doc="longest move of a split back to its bout's start",
+                                 unit="s", ge=0.0)
     density_bin_mm: float = _f(0.5, doc="bin of the folded trajectory density map", unit="mm",
                                gt=0.0)
     bootstrap_resamples: int = _f(2000, doc="bootstrap resamples of the critical angle CI",
@@ -201,8 +197,10 @@ class CellsSettings:
     threshold_mad: float = _f(4.0, doc="detection threshold: median + k * MAD of the filtered "
                               "image", gt=0.0)
     use_local_correlation: bool = _f(True, doc="combine mean and local-correlation images")
-    corr_weight: float = _f(0.5, doc="weight of the local-correlation image in the mix",
+    corr_weight: float = _f(0.0, doc="weight of the local-correlation image in the mix",
                             ge=0.0, le=1.0)
+    sigma_factor_yx: float = _f(0.75, doc="in-plane LoG sigma as a fraction of the "
+                                "blob-matched radius / sqrt(3)", gt=0.0, le=2.0)
     tile_yx: tuple[int, int] = _f((256, 256), doc="core tile (y, x) of block-wise detection",
                                   unit="voxel", ge=1)
 

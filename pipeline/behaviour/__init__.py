@@ -1,0 +1,40 @@
+"""Rig behaviour: reading and validating the log, turn events, target geometry, splits."""
+
+from pipeline.behaviour.bouts import BOUT_COLUMNS, detect_turns, heading_velocity
+from pipeline.behaviour.geometry import (
+    TargetSet,
+    circular_mean,
+    egocentric_bearing,
+    target_distance,
+    target_set_geometry,
+    wrap_angle,
+)
+from pipeline.behaviour.log import CANONICAL_COLUMNS, DEFAULT_COLUMNS, LogSpec, read_log
+from pipeline.behaviour.splits import (
+    SPLIT_COLUMNS,
+    TrajectoryDensity,
+    critical_angle,
+    detect_splits,
+    trajectory_density,
+)
+
+__all__ = [
+    "BOUT_COLUMNS",
+    "CANONICAL_COLUMNS",
+    "DEFAULT_COLUMNS",
+    "SPLIT_COLUMNS",
+    "LogSpec",
+    "TargetSet",
+    "TrajectoryDensity",
+    "circular_mean",
+    "critical_angle",
+    "detect_splits",
+    "detect_turns",
+    "egocentric_bearing",
+    "heading_velocity",
+    "read_log",
+    "target_distance",
+    "target_set_geometry",
+    "trajectory_density",
+    "wrap_angle",
+]

@@ -1,0 +1,186 @@
+"""Split detection on simulated trajectories with a planted critical angle."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from pipeline.behaviour import critical_angle, detect_splits, trajectory_density
+from pipeline.behaviour.geometry import circular_mean
+
+DT_S = 0.02
+SPEED_MM_S = 2.0
+
+
+def simulate(targets: np.ndarray, crit_rad: list[float], drops: list[int], rng, *,
+             noise_rad: float = 0.02):
+    """Follow the mean direction of the remaining targets; when their subtended angle exceeds
+    the next critical angle, drop a target. Returns samples and the planted split times."""
+    pos = np.zeros(2)
+    remaining = list(range(len(targets)))
+    xs, hs, split_t = [], [], []
+    level = 0
+    for step in range(20_000):
+        d = np.arctan2(targets[remaining, 1] - pos[1], targets[remaining, 0] - pos[0])
+        if len(remaining) > 1:
+            dd = np.sort(np.mod(d, 2 * np.pi))
+            gaps = np.diff(np.append(dd, dd[0] + 2 * np.pi))
+            if 2 * np.pi - gaps.max() > crit_rad[level]:
+                remaining.remove(drops[level])
+                split_t.append(step * DT_S)
+                level += 1
+                continue
+        h = float(circular_mean(d)) + rng.normal(0, noise_rad)
+        xs.append(pos.copy())
+        hs.append(h)
+        pos = pos + SPEED_MM_S * DT_S * np.array([np.cos(h), np.sin(h)])
+        if len(remaining) == 1 and np.hypot(*(targets[remaining[0]] - pos)) < 1.0:
+            break
+    xy = np.array(xs)
+    return xy, np.array(hs), split_t
+
+
+def stack(trials):
+    """Concatenate simulated trials into one log (trial -1 for one sample between)."""
+    t0, parts = 0.0, []
+    for tid, (xy, h, targets) in enumerate(trials):
+        n = len(h)
+        parts.append((t0 + np.arange(n) * DT_S, xy, h, np.full(n, tid),
+                      np.broadcast_to(targets[:, 0], (n, len(targets))),
+                      np.broadcast_to(targets[:, 1], (n, len(targets)))))
+        t0 += n * DT_S + 1.0
+    cat = [np.concatenate([p[i] for p in parts]) for i in range(6)]
+    return cat
+
+
+def test_two_target_split_recovers_planted_angle_time_and_choice(rng):
+    targets = np.array([[-5.0, 20.0], [5.0, 20.0]])
+    trials, planted, truth = [], [], []
+    for i in range(12):
+        crit = np.deg2rad(rng.normal(60, 6))
+        drop = i % 2
+        xy, h, st = simulate(targets, [crit], [drop], rng)
+        trials.append((xy, h, targets))
+        planted.append(crit)
+        truth.append((st[0], 1 - drop))
+    t, xy, h, tr, tx, ty = stack(trials)
+    df = detect_splits(t, xy[:, 0], xy[:, 1], h, tx, ty, tr, target_names=("a", "b"))
+    assert len(df) == 12 and (df["level"] == 1).all()
+    t_start = np.array([t[tr == k][0] for k in range(12)])
+    for row, (split_s, chosen) in zip(df.itertuples(), truth, strict=True):
+        assert row.split_s - t_start[row.trial] == pytest.approx(split_s, abs=0.35)
+        assert row.chosen == "ab"[chosen]
+    # 0.35 s at 2 mm/s moves the subtended angle by < 3 degrees here
+    np.testing.assert_allclose(df["subtended_rad"], planted, atol=np.deg2rad(3.0))
+    est = critical_angle(df["subtended_rad"], seed=1)
+    # reference: numpy.median of the planted angles (the estimator's target)
+    assert est["estimate_rad"] == pytest.approx(np.median(planted), abs=np.deg2rad(2.0))
+    assert est["ci_low_rad"] <= est["estimate_rad"] <= est["ci_high_rad"]
+    assert est["n"] == 12
+
+
+def test_three_targets_split_twice(rng):
+    targets = np.array([[-8.0, 20.0], [0.0, 24.0], [8.0, 20.0]])
+    crits = [np.deg2rad(50.0), np.deg2rad(45.0)]
+    xy, h, st = simulate(targets, crits, [0, 2], rng)      # drop left, then right: choose 1
+    t, xy, h, tr, tx, ty = stack([(xy, h, targets)])
+    df = detect_splits(t, xy[:, 0], xy[:, 1], h, tx, ty, tr, target_names=("L", "M", "R"))
+    assert df["level"].tolist() == [1, 2]
+    assert df["dropped"].tolist() == ["L", "R"]
+    assert df["chosen"].tolist() == ["", "M"]
+    assert df["n_remaining"].tolist() == [3, 2]
+    np.testing.assert_allclose(df["split_s"], st, atol=0.35)
+    np.testing.assert_allclose(df["subtended_rad"], crits, atol=np.deg2rad(3.0))
+
+
+def test_no_split_when_trajectory_stays_on_bisector(rng):
+    targets = np.array([[-5.0, 20.0], [5.0, 20.0]])
+    xy, h, _ = simulate(targets, [np.deg2rad(170.0)], [0], rng)   # never reached
+    t, xy, h, tr, tx, ty = stack([(xy[:300], h[:300], targets)])
+    assert detect_splits(t, xy[:, 0], xy[:, 1], h, tx, ty, tr).empty
+
+
+def test_critical_angle_ci_matches_scipy_percentile_bootstrap(rng):
+    from scipy.stats import bootstrap
+
+    a = rng.normal(1.0, 0.1, 40)
+    est = critical_angle(a, seed=3)
+    # reference: scipy.stats.bootstrap with the same generator seed
+    ref = bootstrap((a,), np.median, n_resamples=2000, method="percentile",
+                    rng=np.random.default_rng(3))
+    assert est["ci_low_rad"] == pytest.approx(ref.confidence_interval.low)
+    assert est["ci_high_rad"] == pytest.approx(ref.confidence_interval.high)
+    assert np.isnan(critical_angle([np.nan])["estimate_rad"])
+
+
+def test_density_rotates_targets_ahead_and_folds(rng):
+    # one trial heading straight for targets placed to the world's -x side
+    n = 50
+    x = -np.linspace(0, 10, n)
+    y = np.zeros(n)
+    tx = np.tile([-20.0, -20.0], (n, 1))
+    ty = np.tile([-3.0, 3.0], (n, 1))
+    dens = trajectory_density(x, y, tx, ty, np.zeros(n, int), bin_mm=1.0)
+    assert dens.counts.sum() == pytest.approx(1.0)
+    assert dens.x_edges_mm[0] == 0.0
+    # every sample lies on the midline ahead: first x bin, y from 0 to 10 mm
+    assert dens.counts[:, 0].sum() == pytest.approx(1.0)
+    centres = 0.5 * (dens.y_edges_mm[1:] + dens.y_edges_mm[:-1])
+    assert (centres[dens.counts[:, 0] > 0] >= 0).all()
+    assert dens.n_trials == 1
+
+
+def simulate_bouts(targets, crit_rad, drop, rng, *, dt_s=0.005):
+    """An animal that moves and turns only in 0.25 s bouts (0.45 s + exponential 0.35 s
+    between), lognormal step lengths, each bout turning 0.8 x (goal - heading) + N(0, 8 deg).
+    Returns samples and the planted split time."""
+    pos, h = np.zeros(2), np.pi / 2 + rng.normal(0, np.deg2rad(8))
+    remaining = [0, 1]
+    xs, hs, split_t = [], [], None
+    n_bout = int(0.25 / dt_s)
+    step = 0
+    while step < 40_000:
+        n_wait = int((0.45 + rng.exponential(0.35)) / dt_s)
+        length_mm = 1.2 * rng.lognormal(0, 0.3)
+        d = np.arctan2(targets[remaining, 1] - pos[1], targets[remaining, 0] - pos[0])
+        goal = float(circular_mean(d))
+        turn = 0.8 * np.angle(np.exp(1j * (goal - h))) + rng.normal(0, np.deg2rad(8))
+        for k in range(n_bout + n_wait):
+            if k < n_bout:
+                h += turn / n_bout
+                pos = pos + length_mm / n_bout * np.array([np.cos(h), np.sin(h)])
+            xs.append(pos.copy())
+            hs.append(h)
+            step += 1
+            if len(remaining) == 2:
+                dd = np.arctan2(targets[:, 1] - pos[1], targets[:, 0] - pos[0])
+                if abs(np.angle(np.exp(1j * (dd[0] - dd[1])))) > crit_rad:
+                    remaining.remove(drop)
+                    split_t = step * dt_s
+        if np.hypot(*(targets[remaining[0]] - pos)) < 2.0 and len(remaining) == 1:
+            break
+    return np.array(xs), np.array(hs), split_t
+
+
+def test_bout_animal_brackets_the_planted_angle(rng):
+    targets = np.array([[-4.0, 14.0], [4.0, 14.0]])
+    crit = np.deg2rad(100.0)
+    trials, times = [], []
+    for i in range(16):
+        xy, h, st = simulate_bouts(targets, crit, i % 2, rng)
+        trials.append((xy, h, targets))
+        times.append(st)
+    dt_s = 0.005
+    t0, parts = 0.0, []
+    for tid, (xy, h, tg) in enumerate(trials):
+        n = len(h)
+        parts.append((t0 + np.arange(n) * dt_s, xy, h, np.full(n, tid),
+                      np.tile(tg[:, 0], (n, 1)), np.tile(tg[:, 1], (n, 1))))
+        t0 += n * dt_s + 1.0
+    t, xy, h, tr, tx, ty = (np.concatenate([p[i] for p in parts]) for i in range(6))
+    df = detect_splits(t, xy[:, 0], xy[:, 1], h, tx, ty, tr)
+    assert len(df) == 16
+    inside = (df["subtended_prev_rad"] <= crit + 1e-9) & (crit <= df["subtended_rad"] + 1e-9)
+    assert inside.mean() >= 0.75        # the bracket holds the crossing in most trials
+    est = critical_angle(df["subtended_mid_rad"], seed=0)
+    assert est["estimate_rad"] == pytest.approx(crit, abs=np.deg2rad(6.0))
