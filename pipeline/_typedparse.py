@@ -105,7 +105,7 @@ def _parse_value(ctx: _Ctx, key: str, value: Any, tp: Any, meta: typing.Mapping[
     if dataclasses.is_dataclass(tp):
         if not isinstance(value, dict):
             raise _fail(ctx, key, value, "a table")
-        return parse_section(tp, value, key, source=ctx.source, base_dir=ctx.base_dir,
+        return parse_section(typing.cast(type, tp), value, key, source=ctx.source, base_dir=ctx.base_dir,
                              check_files=ctx.check_files)
     raise TypeError(f"config field {key} has an unsupported type {tp!r}")  # a bug, not user input
 

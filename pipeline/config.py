@@ -201,6 +201,8 @@ class CellsSettings:
                             ge=0.0, le=1.0)
     sigma_factor_yx: float = _f(0.75, doc="in-plane LoG sigma as a fraction of the "
                                 "blob-matched radius / sqrt(3)", gt=0.0, le=2.0)
+    residual_separation: float = _f(0.8, doc="residual pass: new cells farther than this "
+                                    "many diameters from found ones (0 = off)", ge=0.0, le=2.0)
     tile_yx: tuple[int, int] = _f((256, 256), doc="core tile (y, x) of block-wise detection",
                                   unit="voxel", ge=1)
 

@@ -145,8 +145,8 @@ def plan(settings: Settings, store: Store, *, inputs: dict[str, list[dict[str, A
          = None) -> list[tuple[Stage, str]]:
     """Each stage with its state: ``done``, ``stale`` (record differs), ``missing`` or ``off``."""
     inputs = inputs if inputs is not None else input_records(settings, store)
-    records = {}
-    out = []
+    records: dict[str, str] = {}
+    out: list[tuple[Stage, str]] = []
     stale_upstream: set[str] = set()
     off: set[str] = set()
     for name, st in registry().items():

@@ -56,7 +56,7 @@ def blosc(codec: str = "lz4", level: int = 5) -> list[Any]:
     """Blosc with bit-shuffle: fast for uint16 images (lz4) or compact for archives (zstd)."""
     if codec == "none":
         return []
-    return [BloscCodec(cname=codec, clevel=level, shuffle=BloscShuffle.bitshuffle)]
+    return [BloscCodec(cname=codec, clevel=level, shuffle=BloscShuffle.bitshuffle)]  # type: ignore[arg-type]
 
 
 def file_sha256(path: Path, *, block_bytes: int = 1 << 22) -> str:
@@ -210,7 +210,7 @@ class Store:
 
     def warnings(self) -> list[dict[str, str]]:
         """Every warning recorded by a finished stage, in stage order."""
-        out = []
+        out: list[dict[str, str]] = []
         for name, rec in self.manifest().get("stages", {}).items():
             out.extend({"stage": name, "message": w} for w in rec.get("warnings", []))
         return out

@@ -50,21 +50,26 @@ def _prepare(rng, settings):
     prep.write_array(ALIGN["turn"], turn)
     prep.write_array(ALIGN["trial"], np.repeat(trial[:, None], N_PLANES, axis=1))
     prep.write_array(ALIGN["bearing"], bearing)
-    prep.write_array(ALIGN["volume_start"], np.arange(n) / RATE_HZ)
+    plane_times = np.arange(n)[:, None] / RATE_HZ + np.arange(N_PLANES)[None, :] * 0.01
+    prep.write_array(ALIGN["plane_times"], plane_times)
     prep.write_table("cells.parquet", pd.DataFrame({
         "id": np.arange(1, n_cells + 1), "plane": np.arange(n_cells) % N_PLANES,
         "z_um": 0.0, "y_um": 1.0, "x_um": 2.0}))
     splits_s = (np.arange(N_TRIALS) * TRIAL_LEN + 30) / RATE_HZ
     prep.write_table("splits.parquet", pd.DataFrame({"trial": np.arange(N_TRIALS),
-                                                     "split_s": splits_s}))
+                                                     "split_rig_s": splits_s}))
     onsets = np.sort(rng.choice(np.arange(10, n - 10), 48, replace=False))
     prep.write_table("bouts.parquet", pd.DataFrame({
-        "onset_s": onsets / RATE_HZ, "angle_rad": turn[onsets, 0],
+        "onset_rig_s": onsets / RATE_HZ, "angle_rad": turn[onsets, 0],
         "direction": np.where(turn[onsets, 0] > 0, "left", "right"), "trial": trial[onsets]}))
     labels = np.zeros((N_PLANES, 8, 8), np.int32)
     labels.reshape(-1)[np.arange(n_cells) * 3] = np.arange(1, n_cells + 1)
     prep.create_labels(labels, voxel_size_um=(2.0, 1.0, 1.0))
     prep.commit()
+    from pipeline.align import fit_clock
+
+    ticks = np.arange(n) / RATE_HZ  # rig clock = imaging clock here
+    base.write_record("align", {"info": {"clock": fit_clock(ticks, ticks).to_dict()}})
     return base, act, turn, trial, bearing
 
 

@@ -273,3 +273,14 @@ def test_motion_stage_reference_start_beyond_session(tmp_path: Path) -> None:
     with Compute(settings.compute, quiet=True) as compute, pytest.raises(
             ConfigError, match=r"motion\.reference_start = 5: the session has only 3 volumes"):
         run_motion(settings, store.stage_store("motion", "h", resumable=False), compute)
+
+
+@pytest.mark.parametrize("shift", [(0.3, -1.7, 2.25), (0.0, 0.0, 0.0), (-0.5, 3.0, 0.0),
+                                   (1.2, -0.01, -7.9), (9.0, 0.5, 0.5)])
+def test_linear_shift_matches_scipy(rng: np.random.Generator, shift) -> None:
+    v = rng.normal(100.0, 10.0, (5, 12, 14)).astype(np.float32)
+    # reference: scipy.ndimage.shift, order 1, edges extended (mode "nearest")
+    expected = ndi.shift(v, np.negative(shift), order=1, mode="nearest", prefilter=False)
+    got = shift_volume(v, shift)
+    assert got.dtype == np.float32 and got is not v
+    np.testing.assert_allclose(got, expected, rtol=0, atol=1e-3)

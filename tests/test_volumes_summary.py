@@ -120,3 +120,19 @@ def test_errors(rng: np.random.Generator) -> None:
         acc.merge(SummaryAccumulator.empty((2, 4, 5)))
     with pytest.raises(ConfigError, match="different offsets"):
         acc.merge(SummaryAccumulator.empty(SHAPE, offset=np.ones(SHAPE)))
+
+
+@pytest.mark.parametrize("shape", [(4, 9, 11), (1, 5, 7), (3, 1, 4)])
+@pytest.mark.parametrize(("neighbourhood", "size"), [(26, (3, 3, 3)), (8, (1, 3, 3))])
+def test_neighbour_mean_matches_box_filter(rng: np.random.Generator, shape, neighbourhood,
+                                           size) -> None:
+    import scipy.ndimage as ndi
+
+    v = rng.normal(100.0, 10.0, shape)
+    k = float(np.prod(size))
+    # reference: scipy.ndimage.uniform_filter (zero padding) times the box volume
+    total = ndi.uniform_filter(v, size=size, mode="constant") * k - v
+    count = np.rint(ndi.uniform_filter(np.ones_like(v), size=size, mode="constant") * k - 1)
+    expected = np.where(count > 0, total / np.maximum(count, 1), 0.0)
+    np.testing.assert_allclose(neighbour_mean(v, neighbourhood=neighbourhood), expected,
+                               rtol=0, atol=1e-9)

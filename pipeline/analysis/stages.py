@@ -6,8 +6,9 @@ Inputs (written by earlier stages):
 ``cells.parquet``                      ``id``, ``plane``, ``z_um``, ``y_um``, ``x_um``
 ``session.zarr/align/<name>``          behaviour resampled per plane sample, (n_volumes, n_planes)
                                        [, n_targets]: :data:`ALIGN` lists the names used
-``bouts.parquet`` / ``splits.parquet`` bout and split tables; their times are converted to
-                                       volume indices with ``align/volume_start_s``
+``bouts.parquet`` / ``splits.parquet`` bout and split tables on the rig clock; converted with
+                                       the align stage's clock model and matched to volumes
+                                       by ``align/plane_times_s``
 
 A cell in plane ``z`` is sampled at plane ``z``'s times, so the tuning regressors of that cell
 are column ``z`` of the resampled behaviour. The decoders use all cells together and one target
@@ -40,8 +41,8 @@ from pipeline.stages import stage
 __all__ = ["ALIGN", "run_decode", "run_tuning"]
 
 #: names of the align stage's per-plane behaviour arrays read here
-ALIGN = {"turn": "align/turn", "vigor": "align/vigor", "trial": "align/trial",
-         "bearing": "align/bearing_rad", "volume_start": "align/volume_start_s"}
+ALIGN = {"turn": "align/turn_rad_s", "vigor": "align/vigor", "trial": "align/trial",
+         "bearing": "align/bearing_rad", "plane_times": "align/plane_times_s"}
 
 
 #: activity up to this size is loaded; larger is read block by block of cells from zarr
@@ -88,14 +89,17 @@ def _trial_per_volume(store):
 
 def _volume_index(store, table, column):
     """Volume index of each row's time (imaging clock; rig-clock times converted)."""
-    start = np.asarray(store.read_array(ALIGN["volume_start"])[...], dtype=np.float64)
-    t = table[column].to_numpy(dtype=np.float64)
-    rec = store.record("align") or {}
-    clock = rec.get("info", {})
-    if "offset_s" in clock:
-        from pipeline.session import rig_to_scope_s
+    from pipeline.align import ClockModel
 
-        t = rig_to_scope_s(t, clock)
+    plane_times = np.asarray(store.read_array(ALIGN["plane_times"])[...], dtype=np.float64)
+    start = plane_times.min(axis=1)
+    t = table[column].to_numpy(dtype=np.float64)
+    if column.endswith("_rig_s"):
+        info = (store.record("align") or {}).get("info", {})
+        if "clock" not in info:
+            raise StoreError(f"{column}: rig-clock times need the align stage's clock model; "
+                             "re-run `forkmap run --from align`")
+        t = ClockModel.from_dict(info["clock"]).rig_to_scope(t)
     return np.clip(np.searchsorted(start, t, side="right") - 1, 0, start.size - 1)
 
 
@@ -112,6 +116,9 @@ def run_decode(settings, store, compute):
         raise InputError(f"{ALIGN['turn']}: {y.shape[0]} volumes, but traces/{ds.feature} has "
                          f"{X.shape[0]}")
     trial = _trial_per_volume(store)
+    if trial is not None:
+        # CV groups are contiguous runs: each trial, and each gap between trials (id -1)
+        trial = np.concatenate([[0], np.cumsum(np.diff(trial) != 0)])
     lags = lag_samples(lag_min_s=ds.lag_min_s, lag_max_s=ds.lag_max_s, rate_hz=rate)
     gap = gap_samples(rate_hz=rate, decay_s=im.decay_s, lag_span_s=ds.lag_max_s - ds.lag_min_s,
                       extra_s=ds.gap_s)
@@ -122,7 +129,7 @@ def run_decode(settings, store, compute):
     doc.update({"feature": ds.feature, "gap_samples": gap, "rate_hz": rate})
     if store.has("bouts.parquet"):
         bouts = store.read_table("bouts.parquet")
-        onset = _volume_index(store, bouts, "onset_s")
+        onset = _volume_index(store, bouts, "onset_rig_s")
         window = max(1, round(ds.pre_bout_window_s * rate))
         trial_b = bouts["trial"].to_numpy() if "trial" in bouts else None
         # bout windows tile the lag range in steps of one window (bounded feature memory)
@@ -193,7 +200,7 @@ def run_tuning(settings, store, compute):
     if trial is None:
         raise StoreError(f"{ALIGN['trial']} is missing: the tuning epochs need trial ids")
     splits = store.read_table("splits.parquet")
-    split_vol = _volume_index(store, splits, "split_s")
+    split_vol = _volume_index(store, splits, "split_rig_s")
     per_trial = {t: split_vol[splits["trial"].to_numpy() == t].astype(np.float64)
                  for t in np.unique(splits["trial"].to_numpy())}
     masks = epoch_masks(trial, per_trial, pre=round(ts.pre_window_s * rate),

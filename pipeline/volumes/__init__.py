@@ -6,6 +6,15 @@ session store live in their own modules (``ingest``, ``motion_stage``...).
 
 from __future__ import annotations
 
+from pipeline.volumes.cell_residual import blob_patches, residual_seeds, subtract_blobs
+from pipeline.volumes.cells import (
+    CellDetection,
+    detect_cells,
+    local_maxima,
+    log_response,
+    log_sigma_vox,
+    robust_threshold,
+)
 from pipeline.volumes.motion import (
     PreparedReference,
     build_reference,
@@ -27,6 +36,15 @@ from pipeline.volumes.tiffio import (
 )
 
 __all__ = [
+    "CellDetection",
+    "blob_patches",
+    "detect_cells",
+    "local_maxima",
+    "log_response",
+    "log_sigma_vox",
+    "residual_seeds",
+    "robust_threshold",
+    "subtract_blobs",
     "MotionFlags",
     "PreparedReference",
     "SummaryAccumulator",

@@ -37,7 +37,11 @@ from pipeline.volumes.summary import SummaryAccumulator
 
 __all__ = ["run_motion", "estimation_options", "volume_groups"]
 
-_TASKS_PER_WORKER = 4
+# Volumes are cut into at most this many tasks whatever the worker count: the partition (and so
+# the order in which float64 block sums are added) depends only on the session length and
+# motion.block_volumes, which keeps the reference and the summary images bit-identical on 1 or
+# 2 threads and on a cluster, and bounds the per-task accumulators held for the merge.
+_N_TASKS = 16
 
 
 def estimation_options(settings: Settings) -> dict[str, Any]:
@@ -127,7 +131,7 @@ def run_motion(settings: Settings, store: StageStore, compute: Compute) -> None:
                    f"(motion.reference_count = {m.reference_count}, {T} volumes)")
     vpath = store.volumes_path
     opts = estimation_options(settings)
-    n_tasks = _TASKS_PER_WORKER * compute.n_workers
+    n_tasks = _N_TASKS
     ref_groups = volume_groups(m.reference_start, ref_stop, block=m.block_volumes,
                                n_tasks=n_tasks)
     n_ref = ref_stop - m.reference_start

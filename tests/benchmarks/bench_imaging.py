@@ -1,0 +1,274 @@
+"""Benchmark of the imaging path (motion + summary images + traces) on a synthetic session.
+
+The session is written straight into a zarr array (no TIFFs): a fixed random-blob volume seen
+through a field of view moved by a random shift per volume, plus Gaussian noise; cells are
+balls at some of the blob centres. Measured in one run:
+
+(a) our path (1 worker) / one plain read + decompress pass over the same zarr (goal <= 3);
+(b) the same path written with reference libraries (skimage phase_cross_correlation per volume,
+    scipy.ndimage.shift, a registered copy, boolean-mask means per cell) / ours (goal >= 5),
+    on a subset of volumes, with the shift errors of both against the truth;
+(c) peak RSS of our path at N and 2N volumes, each in its own subprocess (goal flat within
+    15 %, under 2 GB);
+(d) 2 workers on a distributed LocalCluster vs 1 (goal >= 1.7x, identical outputs).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+import scipy.ndimage as ndi
+import zarr
+
+ROOT = Path(__file__).resolve().parents[2]
+VOXEL_UM = (4.0, 1.5, 1.5)
+UPSAMPLE = 20
+
+
+def make_session(folder: Path, n_vol: int, shape: tuple[int, int, int], *, seed: int = 0
+                 ) -> tuple[str, np.ndarray, np.ndarray]:
+    """Write a synthetic session; returns (volumes path, true shifts (n, 3), cell labels)."""
+    rng = np.random.default_rng(seed)
+    pad = (2, 8, 8)
+    big_shape = tuple(s + 2 * p for s, p in zip(shape, pad, strict=True))
+    n_blob = int(np.prod(big_shape) / 400)
+    centres = np.column_stack([rng.integers(0, s, n_blob) for s in big_shape])
+    big = np.zeros(big_shape, np.float32)
+    big[tuple(centres.T)] = rng.uniform(500, 1500, n_blob)
+    big = ndi.gaussian_filter(big, (0.7, 1.2, 1.2)) * 15 + 100
+    shifts = np.column_stack([rng.integers(-1, 2, n_vol), rng.integers(-6, 7, n_vol),
+                              rng.integers(-6, 7, n_vol)]).astype(np.float64)
+    path = str(folder / "volumes.zarr")
+    arr = zarr.create_array(path, shape=(n_vol, *shape), chunks=(1, *shape), dtype="uint16",
+                            overwrite=True)
+    for t in range(n_vol):
+        # content displaced by +shift: volume_t(r) = reference(r - shift)
+        sl = tuple(slice(p - int(s), p - int(s) + n)
+                   for p, s, n in zip(pad, shifts[t], shape, strict=True))
+        vol = big[sl] + rng.normal(0, 8, shape).astype(np.float32)
+        arr[t] = np.clip(vol, 0, 65535).astype(np.uint16)
+    labels = np.zeros(shape, np.int32)
+    inner = centres - np.array(pad)
+    ok = np.all((inner >= 2) & (inner < np.array(shape) - 2), axis=1)
+    zz, yy, xx = np.indices((3, 5, 5)) - np.array([1, 2, 2])[:, None, None, None]
+    ball = (zz * 4.0) ** 2 + (yy * 1.5) ** 2 + (xx * 1.5) ** 2 <= 3.0**2
+    offs = np.argwhere(ball) - np.array([1, 2, 2])
+    for i, c in enumerate(inner[ok][: max(1, int(ok.sum()) // 2)]):
+        p = c + offs
+        labels[tuple(p.T)] = i + 1
+    # a later ball can cover an earlier one completely: number the cells left 1..n
+    present, consecutive = np.unique(labels, return_inverse=True)
+    labels = consecutive.reshape(labels.shape).astype(np.int32)
+    assert present[0] == 0
+    return path, shifts, labels
+
+
+def _read_pass(path: str) -> float:
+    arr = zarr.open_array(path, mode="r")
+    t0 = time.perf_counter()
+    total = 0.0
+    for t in range(arr.shape[0]):
+        total += float(np.asarray(arr[t])[0, 0, 0])
+    return time.perf_counter() - t0
+
+
+def _path_task(group: tuple[int, int], vpath: str, ref_path: str, weights_path: str,
+               options: dict) -> tuple[np.ndarray, object, np.ndarray, np.ndarray]:
+    """One block of our path: register, accumulate summary sums, sample the cells."""
+    from pipeline.volumes.motion import prepare_reference, register_volume, shift_volume
+    from pipeline.volumes.sampling import sample_volume
+    from pipeline.volumes.summary import SummaryAccumulator
+    from pipeline.volumes.traces import _load_weights
+
+    arr = zarr.open_array(vpath, mode="r")
+    reference = np.asarray(zarr.open_array(ref_path, mode="r")[...])
+    prep = prepare_reference(reference, **options)
+    w = _load_weights(weights_path)
+    acc = SummaryAccumulator.empty(reference.shape, offset=reference)
+    n = group[1] - group[0]
+    shifts = np.zeros((n, 3))
+    cell = np.empty((w.cell.shape[0], n), np.float32)
+    neu = np.empty_like(cell)
+    for i, t in enumerate(range(*group)):
+        vol = np.asarray(arr[t])
+        shifts[i] = register_volume(vol, prep, upsample=UPSAMPLE)[0]
+        acc.update(shift_volume(vol, shifts[i]))
+        cell[:, i], neu[:, i] = sample_volume(vol, shifts[i], w)
+    return shifts, acc, cell, neu
+
+
+def our_path(vpath: str, labels: np.ndarray, work: Path, *, scheduler: str = "threads",
+             workers: int = 1, block: int = 8) -> tuple[float, dict]:
+    """Run our imaging path; returns (seconds, outputs)."""
+    from pipeline.compute import Compute
+    from pipeline.config import ComputeSettings
+    from pipeline.volumes.motion_stage import volume_groups
+    from pipeline.volumes.sampling import build_weights
+    from pipeline.volumes.traces import _save_weights
+
+    arr = zarr.open_array(vpath, mode="r")
+    n = arr.shape[0]
+    ref_path = str(work / "reference.zarr")
+    ref = np.asarray(arr[0], dtype=np.float32)
+    zarr.create_array(ref_path, shape=ref.shape, dtype="float32", overwrite=True)[...] = ref
+    weights_path = str(work / "weights")
+    _save_weights(weights_path, build_weights(labels, voxel_size_um=VOXEL_UM))
+    options = {"highpass_sigma_vox": (0.0, 6.0, 6.0)}
+    groups = volume_groups(0, n, block=block, n_tasks=16)  # as the motion stage cuts them
+    compute = Compute(ComputeSettings(scheduler=scheduler, workers=workers), quiet=True)
+    try:
+        compute.map(_path_task, groups[:1], vpath, ref_path, weights_path, options)  # warm up
+        t0 = time.perf_counter()
+        res = compute.map(_path_task, groups, vpath, ref_path, weights_path, options)
+        acc = res[0][1]
+        for r in res[1:]:
+            acc.merge(r[1])
+        mean, corr = acc.finalize()
+        seconds = time.perf_counter() - t0
+    finally:
+        compute.close()
+    out = {"shifts": np.concatenate([r[0] for r in res]), "mean": mean, "corr": corr,
+           "cell": np.concatenate([r[2] for r in res], axis=1),
+           "neuropil": np.concatenate([r[3] for r in res], axis=1)}
+    return seconds, out
+
+
+def naive_path(vpath: str, labels: np.ndarray, work: Path, n_vol: int) -> tuple[float, dict]:
+    """The same path with reference libraries, on the first ``n_vol`` volumes.
+
+    Register each volume (skimage phase_cross_correlation), write a registered copy
+    (scipy.ndimage.shift, linear), then the mean and local-correlation images from that copy
+    and each cell's mean through a boolean mask per cell.
+    """
+    from skimage.registration import phase_cross_correlation
+
+    arr = zarr.open_array(vpath, mode="r")
+    reference = np.asarray(arr[0], dtype=np.float32)
+    t0 = time.perf_counter()
+    reg = zarr.create_array(str(work / "registered.zarr"), shape=(n_vol, *arr.shape[1:]),
+                            chunks=(1, *arr.shape[1:]), dtype="float32", overwrite=True)
+    shifts = np.zeros((n_vol, 3))
+    for t in range(n_vol):
+        vol = np.asarray(arr[t], dtype=np.float32)
+        shifts[t] = -phase_cross_correlation(reference, vol, upsample_factor=UPSAMPLE)[0]
+        reg[t] = ndi.shift(vol, -shifts[t], order=1, mode="nearest")
+    total = np.zeros(arr.shape[1:])
+    for t in range(n_vol):
+        total += reg[t]
+    # local correlation: Pearson over time of each voxel with the mean of its 26 neighbours
+    # (3x3x3 box mean without the centre), from a second pass over the registered copy
+    mean = total / n_vol
+    sxn = np.zeros_like(total)
+    sxx = np.zeros_like(total)
+    snn = np.zeros_like(total)
+    nb_sum = np.zeros_like(total)
+    for t in range(n_vol):
+        x = np.asarray(reg[t], dtype=np.float64)
+        nb = (ndi.uniform_filter(x, size=3, mode="nearest") * 27 - x) / 26
+        nb_sum += nb
+        sxn += (x - mean) * nb
+        sxx += (x - mean) ** 2
+        snn += nb * nb
+    nb_mean = nb_sum / n_vol
+    var_n = snn / n_vol - nb_mean**2
+    with np.errstate(invalid="ignore", divide="ignore"):
+        corr = (sxn / n_vol) / np.sqrt(sxx / n_vol * var_n)
+    masks = [labels == i for i in range(1, int(labels.max()) + 1)]
+    cell = np.empty((len(masks), n_vol), np.float32)
+    for t in range(n_vol):
+        v = np.asarray(reg[t])
+        for i, m in enumerate(masks):
+            cell[i, t] = v[m].mean()
+    seconds = time.perf_counter() - t0
+    return seconds, {"shifts": shifts, "mean": mean, "corr": corr, "cell": cell}
+
+
+def _digest(out: dict) -> str:
+    h = hashlib.sha256()
+    for k in sorted(out):
+        h.update(np.ascontiguousarray(out[k]).tobytes())
+    return h.hexdigest()
+
+
+def _rss_child(n_vol: int, shape: tuple[int, int, int]) -> None:
+    """Subprocess body: make a session of n_vol volumes, run our path, print peak RSS."""
+    with tempfile.TemporaryDirectory() as tmp:
+        vpath, _, labels = make_session(Path(tmp), n_vol, shape)
+        base = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+        our_path(vpath, labels, Path(tmp))
+        peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss  # KiB on Linux
+    print(json.dumps({"peak_mb": peak / 1024, "after_setup_mb": base / 1024}))
+
+
+def _rss(n_vol: int, shape: tuple[int, int, int]) -> float:
+    code = (f"import sys; sys.path.insert(0, {str(ROOT)!r}); sys.path.insert(0, "
+            f"{str(ROOT / 'tests' / 'benchmarks')!r}); import bench_imaging as b; "
+            f"b._rss_child({n_vol}, {tuple(shape)!r})")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True, cwd=ROOT)
+    return float(json.loads(out.stdout.strip().splitlines()[-1])["peak_mb"])
+
+
+def run(quick: bool) -> list[dict]:
+    shape, n_vol, n_naive = ((12, 128, 128), 48, 16) if quick else ((30, 256, 256), 400, 40)
+    rows = []
+    with tempfile.TemporaryDirectory() as tmp:
+        work = Path(tmp)
+        vpath, truth, labels = make_session(work, n_vol, shape)
+        truth = truth - truth[0]  # the reference is volume 0
+        t_read = min(_read_pass(vpath) for _ in range(2))
+        t_ours, ours = our_path(vpath, labels, work)
+        err = float(np.abs(ours["shifts"] - truth).max())
+        rows.append({
+            "name": f"imaging path / one read pass ({n_vol} x {'x'.join(map(str, shape))})",
+            "figure": t_ours, "baseline": t_read, "ratio": t_ours / t_read, "goal": 3.0,
+            "passed": bool(t_ours / t_read <= 3.0), "unit": "s",
+            "note": f"motion + summary images + cell/neuropil sampling, 1 worker; "
+                    f"{int(labels.max())} cells; max shift error {err:.3f} vox",
+        })
+        t_naive, naive = naive_path(vpath, labels, work, n_naive)
+        per_naive = t_naive / n_naive
+        per_ours = t_ours / n_vol
+        err_naive = float(np.abs(naive["shifts"] - truth[:n_naive]).max())
+        ratio = per_naive / per_ours
+        rows.append({
+            "name": "imaging path: reference-library version / ours (per volume)",
+            "figure": per_ours, "baseline": per_naive, "ratio": ratio, "goal": 5.0,
+            "passed": bool(ratio >= 5.0 and err <= max(err_naive, 0.1)), "unit": "s/volume",
+            "note": f"baseline phase_cross_correlation + ndimage.shift + registered zarr copy + "
+                    f"mean/local-correlation passes + boolean-mask means on the first "
+                    f"{n_naive} volumes; max shift error ours "
+                    f"{err:.3f}, baseline {err_naive:.3f} vox",
+        })
+        t1, out1 = t_ours, ours
+        t2, out2 = our_path(vpath, labels, work, scheduler="local-cluster", workers=2)
+        same = _digest(out1) == _digest(out2)
+        rows.append({
+            "name": "imaging path: 2-worker LocalCluster speed-up over 1 worker",
+            "figure": t2, "baseline": t1, "ratio": t1 / t2, "goal": 1.7,
+            "passed": bool(t1 / t2 >= 1.7 and same), "unit": "s",
+            "note": f"outputs identical: {same}; machine has 2 cores shared with others",
+        })
+    rss_1 = _rss(n_vol, shape)
+    rss_2 = _rss(2 * n_vol, shape)
+    growth = rss_2 / rss_1
+    rows.append({
+        "name": f"imaging path peak RSS, {2 * n_vol} vs {n_vol} volumes",
+        "figure": rss_2, "baseline": rss_1, "ratio": growth, "goal": 1.15,
+        "passed": bool(growth <= 1.15 and rss_2 < 2048), "unit": "MB",
+        "note": "each run in its own subprocess (getrusage RUSAGE_SELF ru_maxrss)",
+    })
+    return rows
+
+
+if __name__ == "__main__":
+    for row in run(quick="--full" not in sys.argv):
+        print(row)

@@ -1,0 +1,123 @@
+"""End to end on the small demo session: ingest -> motion -> cells -> traces recover the truth.
+
+Numbers measured on the small preset, seed 0 (200 planted nuclei, 280 volumes of 8 x 48 x 64):
+shift RMS error 0.05 voxel; 196 cells detected, 194 of the 200 planted (97 %) matched within
+the median nucleus radius (2.67 um) after undoing the reference offset, 1 false; median
+correlation of dF/F with the planted activity 0.81 over matched cells: below the 0.9 goal, at
+the white-noise ceiling of these traces (0.83: the correlation a perfect estimate would reach
+with the noise measured on them); the README's oracle trace (3 x 3 voxels, true shifts undone)
+reaches 0.74 / 0.64 for the bearing / untuned classes on this preset.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from demo_session import demo_config
+from scipy.spatial import cKDTree
+
+from pipeline.config import load_config
+from pipeline.errors import StageError
+from pipeline.stages import run_stages
+from pipeline.store import Store
+
+IMAGING_STAGES = ("ingest", "motion", "cells", "traces")
+
+
+def _sha256_tree(folder: Path) -> dict[str, str]:
+    return {str(p.relative_to(folder)): hashlib.sha256(p.read_bytes()).hexdigest()
+            for p in sorted(folder.rglob("*")) if p.is_file()}
+
+
+def _shifts(store: Store, data: Path) -> tuple[np.ndarray, np.ndarray]:
+    est = np.asarray(store.read_array("motion/shifts_vox")[...])
+    truth = pd.read_parquet(data / "truth" / "shifts.parquet")[["dz_vox", "dy_vox", "dx_vox"]]
+    return est, truth.to_numpy()
+
+
+def _corr_rows(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    a = a - a.mean(axis=1, keepdims=True)
+    b = b - b.mean(axis=1, keepdims=True)
+    return (a * b).sum(axis=1) / np.sqrt((a * a).sum(axis=1) * (b * b).sum(axis=1))
+
+
+@pytest.fixture(scope="module")
+def imaging_run(demo_small_data, tmp_path_factory):
+    data = Path(demo_small_data)
+    folder = tmp_path_factory.mktemp("demo-recovery")
+    out = folder / "out"
+    settings = dataclasses.replace(load_config(demo_config(data, out, folder)), behaviour=None)
+    raw_before = {**_sha256_tree(data / "raw"), **_sha256_tree(data / "raw_stack")}
+    try:
+        results = [run_stages(settings, only=name, quiet=True) for name in IMAGING_STAGES]
+    except StageError as exc:  # the registry is incomplete while pipeline/align is being written
+        pytest.skip(f"stage registry not usable yet: {exc}")
+    raw_after = {**_sha256_tree(data / "raw"), **_sha256_tree(data / "raw_stack")}
+    return data, Store(out, create=False), results, raw_before, raw_after
+
+
+def test_imaging_stages_ran(imaging_run):
+    _, _, results, _, _ = imaging_run
+    assert [r[0][0] for r in results] == list(IMAGING_STAGES)
+    assert all(r[0][1].startswith("ran") for r in results)
+
+
+def test_raw_inputs_untouched(imaging_run):
+    _, _, _, before, after = imaging_run
+    assert len(before) > 1
+    assert before == after  # byte identity of every raw TIFF (reference: hashlib.sha256)
+
+
+def test_shifts_recovered(imaging_run):
+    data, store, *_ = imaging_run
+    est, tru = _shifts(store, data)
+    # shifts are relative to the session's reference, truth to the unshifted brain: compare
+    # after removing each one's mean (a constant offset of the reference)
+    err = (est - est.mean(0)) - (tru - tru.mean(0))
+    rms = float(np.sqrt((err**2).sum(axis=1).mean()))
+    assert rms < 0.1  # goal < 0.1 voxel (issue 4); measured 0.05
+
+
+@pytest.fixture(scope="module")
+def matched(imaging_run):
+    data, store, *_ = imaging_run
+    cells = store.read_table("cells.parquet")
+    truth = pd.read_parquet(data / "truth" / "cells.parquet")
+    vs = np.array([4.0, 1.5, 1.5])  # voxel size recorded in truth/scenario.json
+    planted = truth[["z_vox", "y_vox", "x_vox"]].to_numpy() * vs
+    # cells are found in the reference's frame, which is the brain displaced by the mean
+    # planted shift minus the mean estimated one: move them back before matching
+    est, tru = _shifts(store, data)
+    found = (cells[["z_vox", "y_vox", "x_vox"]].to_numpy() + est.mean(0) - tru.mean(0)) * vs
+    radius_um = float(truth["radius_um"].median())
+    dist, idx = cKDTree(planted).query(found)  # reference: scipy.spatial.cKDTree
+    return store, truth, cells, dist < radius_um, idx, len(planted), data, dist
+
+
+def test_cells_recovered(matched):
+    _, _, cells, ok, idx, n_planted, _, dist = matched
+    recall = len(set(idx[ok])) / n_planted
+    false_frac = float((~ok).mean())
+    assert recall > 0.95  # goal > 95 % within one radius (issue 4); measured 0.97 (194 / 200)
+    assert false_frac < 0.05  # goal < 5 % false cells; measured 1 / 196
+    assert len(cells) <= 1.05 * n_planted
+    assert np.median(dist[ok]) < 1.5  # position error in um; measured 1.2 (z dominates)
+
+
+def test_traces_follow_planted_activity(matched):
+    store, _, _, ok, idx, _, data, _ = matched
+    dff = np.asarray(store.read_array("traces/dff")[...])[ok]
+    activity = np.load(data / "truth" / "activity.npy")[idx[ok]]
+    corr = _corr_rows(dff.astype(np.float64), activity.astype(np.float64))
+    assert np.median(corr) > 0.78  # measured 0.81 (goal 0.9 not reached); the oracle 3x3-voxel trace of the README
+    # (truth shifts undone) reaches 0.74 (bearing) / 0.64 (untuned) on this preset
+    # per-plane timing: correlation is best at lag 0, not one volume early or late
+    late = _corr_rows(dff[:, 1:].astype(np.float64), activity[:, :-1].astype(np.float64))
+    early = _corr_rows(dff[:, :-1].astype(np.float64), activity[:, 1:].astype(np.float64))
+    assert np.median(corr) > np.median(late) + 0.05
+    assert np.median(corr) > np.median(early) + 0.05
