@@ -9,8 +9,10 @@
 
 Every accessor reads what a stage wrote; a missing output raises :class:`StoreError` naming
 the stage to run. The imaging (microscope) clock is the time base of every ``t_s``/``*_s``
-column returned here; rig-clock times are converted with the clock model of the ``align``
-stage, ``t_scope = (t_rig - offset_s) / (1 + drift_ppm * 1e-6)`` (DEVELOPERS.md).
+column returned here; rig-clock times (``*_rig_s`` columns of the behaviour stage's tables) are
+converted with the clock model of the ``align`` stage (:class:`pipeline.align.ClockModel`, kept
+in the manifest's ``stages.align.info.clock``), which holds one offset and drift per stretch
+between clock jumps (DEVELOPERS.md).
 
 Where each result lives is written once, in :data:`OUTPUTS`; the report and the NWB export
 read through this class, so a stage that renames an output is adapted here only.
@@ -28,11 +30,12 @@ import dask.array as da
 import numpy as np
 import pandas as pd
 
+from pipeline.align import ClockModel
 from pipeline.errors import StoreError
 from pipeline.store import Store
 
 __all__ = ["Session", "LabelledArray", "OUTPUTS", "TRACE_KINDS", "README_EXAMPLE",
-           "decode_table", "rig_to_scope_s"]
+           "decode_table"]
 
 #: result -> (stage that writes it, candidate paths relative to the output folder, first wins)
 OUTPUTS: Mapping[str, tuple[str, tuple[str, ...]]] = {
@@ -41,23 +44,22 @@ OUTPUTS: Mapping[str, tuple[str, tuple[str, ...]]] = {
     "shifts_um": ("motion", ("session.zarr/motion/shifts_um",)),
     "motion_quality": ("motion", ("session.zarr/motion/quality",)),
     "motion_flags": ("motion", ("session.zarr/motion/flags",)),
-    "mean_image": ("motion", ("session.zarr/motion/mean", "session.zarr/motion/mean_image")),
-    "corr_image": ("motion", ("session.zarr/motion/local_corr",
-                              "session.zarr/motion/local_correlation",
-                              "session.zarr/motion/corr_image")),
+    "mean_image": ("motion", ("session.zarr/motion/mean",)),
+    "corr_image": ("motion", ("session.zarr/motion/local_corr",)),
     "cells": ("cells", ("cells.parquet",)),
     "labels": ("cells", ("volumes.ome.zarr/labels/cells/0",)),
     "behaviour": ("behaviour", ("behaviour.parquet",)),
-    "bouts": ("behaviour", ("bouts.parquet", "behaviour_bouts.parquet")),
-    "splits": ("behaviour", ("splits.parquet", "behaviour_splits.parquet")),
-    "density": ("behaviour", ("session.zarr/behaviour/density",
-                              "session.zarr/behaviour/folded_density")),
-    "critical_angle": ("behaviour", ("critical_angle.json", "behaviour.json")),
+    "bouts": ("behaviour", ("bouts.parquet",)),
+    "splits": ("behaviour", ("splits.parquet",)),
+    "density": ("behaviour", ("session.zarr/behaviour/density",)),
+    "density_x_edges_mm": ("behaviour", ("session.zarr/behaviour/x_edges_mm",)),
+    "density_y_edges_mm": ("behaviour", ("session.zarr/behaviour/y_edges_mm",)),
     "plane_times_s": ("align", ("session.zarr/align/plane_times_s",)),
-    "volume_start_s": ("align", ("session.zarr/align/volume_start_s",)),
+    "behaviour_t_scope_s": ("align", ("session.zarr/align/behaviour_t_scope_s",)),
     "decode": ("decode", ("decode.json",)),
     "decode_weights": ("decode", ("session.zarr/decode/weights",)),
     "tuning": ("tuning", ("tuning.parquet",)),
+    "tuning_curves": ("tuning", ("session.zarr/tuning/curves",)),
 }
 #: The worked example for the README (run as a doctest on a synthetic store by the tests).
 README_EXAMPLE = """
@@ -79,7 +81,6 @@ True
 4
 """
 TRACE_KINDS = ("raw", "neuropil", "corrected", "dff", "events")
-_NOT_TIMES = ("duration", "window", "lag", "interval", "dt_", "_per_", "width")
 
 
 @dataclass(frozen=True)
@@ -121,36 +122,6 @@ class LabelledArray:
     def compute(self) -> np.ndarray:
         """All values as a NumPy array (loads the whole array)."""
         return np.asarray(self.data.compute())
-
-
-def rig_to_scope_s(t_rig_s: Any, clock: Mapping[str, Any]) -> np.ndarray:
-    """Convert rig-clock times to the imaging clock with the ``align`` clock model.
-
-    Parameters
-    ----------
-    t_rig_s : array_like of float
-        Times on the rig clock.
-    clock : mapping
-        The align stage's record info; needs ``offset_s`` and ``drift_ppm``.
-
-    Raises
-    ------
-    StoreError
-        The clock model lacks ``offset_s`` or ``drift_ppm``.
-    """
-    try:
-        offset_s = float(clock["offset_s"])
-        drift_ppm = float(clock.get("drift_ppm", 0.0))
-    except (KeyError, TypeError, ValueError):
-        raise StoreError(f"align clock model {dict(clock)!r}: expected keys 'offset_s' and "
-                         f"'drift_ppm'; re-run `forkmap run --from align`") from None
-    return (np.asarray(t_rig_s, dtype=np.float64) - offset_s) / (1.0 + drift_ppm * 1e-6)
-
-
-def _time_columns(df: pd.DataFrame) -> list[str]:
-    return [c for c in df.columns if str(c).endswith("_s")
-            and not any(w in str(c) for w in _NOT_TIMES)
-            and pd.api.types.is_numeric_dtype(df[c])]
 
 
 def decode_table(obj: Mapping[str, Any]) -> pd.DataFrame:
@@ -208,7 +179,8 @@ def decode_table(obj: Mapping[str, Any]) -> pd.DataFrame:
                          f"top level or one level down); keys seen: {', '.join(obj)}")
     out = pd.concat([df.assign(decoder=name) for name, df in parts], ignore_index=True)
     out.attrs.update({name: df.attrs for name, df in parts})
-    out.attrs.update({k: v for k, v in obj.items() if not isinstance(v, Mapping)})
+    out.attrs.update({k: v for k, v in obj.items()
+                      if not (isinstance(v, Mapping) and lag_key(v) is not None)})
     return out
 
 
@@ -288,8 +260,31 @@ class Session:
 
     @property
     def clock(self) -> dict[str, Any]:
-        """The clock model of the ``align`` stage (offset, drift, residuals, pulse counts)."""
-        return dict(self.record("align").get("info", {}))
+        """The ``align`` stage's clock model as a dict (``ClockModel.to_dict()``).
+
+        Keys include ``offset_s``, ``drift_ppm``, ``segments``, ``residual_rms_ms``,
+        ``residual_max_ms``, ``matched``, ``dropped_volume_indices``, ``spurious_pulse_indices``.
+
+        Raises
+        ------
+        StoreError
+            The align stage has not run, or its record holds no clock model.
+        """
+        info = self.record("align").get("info", {})
+        if not isinstance(info.get("clock"), Mapping):
+            raise StoreError(f"{self.root}/manifest.json: stages.align.info has no 'clock' "
+                             f"model (keys seen: {', '.join(info) or 'none'}); re-run "
+                             f"`forkmap run --from align`")
+        return dict(info["clock"])
+
+    @property
+    def clock_model(self) -> ClockModel:
+        """The ``align`` stage's :class:`pipeline.align.ClockModel` (rig <-> imaging clock)."""
+        try:
+            return ClockModel.from_dict(self.clock)
+        except (KeyError, TypeError) as exc:
+            raise StoreError(f"{self.root}/manifest.json: stages.align.info.clock is not a "
+                             f"clock model ({exc}); re-run `forkmap run --from align`") from None
 
     @property
     def volume_rate_hz(self) -> float:
@@ -313,8 +308,6 @@ class Session:
     @property
     def time_s(self) -> np.ndarray:
         """Start time of every volume on the imaging clock (s)."""
-        if self.has("volume_start_s"):
-            return np.asarray(self.array("volume_start_s").compute(), dtype=np.float64)
         if self.has("plane_times_s"):
             return np.asarray(self.array("plane_times_s").min(axis=1).compute(), np.float64)
         n_t = self._n_volumes()
@@ -397,38 +390,70 @@ class Session:
         return LabelledArray(data, np.asarray(cells), self.time_s[: data.shape[1]], kind, unit)
 
     def _on_scope_clock(self, df: pd.DataFrame) -> pd.DataFrame:
-        """Rig-clock time columns of a behaviour-stage table, converted to the imaging clock."""
-        if "t_s" in df.columns or "t_scope_s" in df.columns:
-            return df.rename(columns={"t_scope_s": "t_s"})
-        clock = self.clock
+        """Each rig-clock column ``<name>_rig_s`` gets an imaging-clock twin ``<name>_s``.
+
+        ``t_rig_s`` becomes ``t_s`` (inserted first); the rig columns are kept.
+        """
+        rig_cols = [c for c in df.columns if str(c).endswith("_rig_s")
+                    and pd.api.types.is_numeric_dtype(df[c])]
+        if not rig_cols:
+            return df
+        model = self.clock_model
         df = df.copy()
-        if "t_rig_s" in df.columns:
-            df.insert(0, "t_s", rig_to_scope_s(df["t_rig_s"], clock))
-        for col in _time_columns(df):
-            if col in ("t_s", "t_rig_s") or col.endswith("_rig_s"):
-                continue
-            df[col] = rig_to_scope_s(df[col], clock)
+        for col in rig_cols:
+            name = "t_s" if col == "t_rig_s" else str(col)[: -len("_rig_s")] + "_s"
+            values = model.rig_to_scope(df[col].to_numpy(np.float64))
+            where = 0 if name == "t_s" else list(df.columns).index(col)
+            df.insert(where, name, values)
         return df
 
     @property
     def behaviour(self) -> pd.DataFrame:
-        """The behaviour log with a ``t_s`` column on the imaging clock (``t_rig_s`` kept)."""
-        return self._on_scope_clock(pd.read_parquet(self._need("behaviour")))
+        """The behaviour log with ``t_s`` on the imaging clock first (``t_rig_s`` kept).
+
+        ``t_s`` is the align stage's ``behaviour_t_scope_s`` when present (the clock model
+        applied by the stage that fitted it), else the rig times converted here.
+        """
+        df = pd.read_parquet(self._need("behaviour"))
+        if self.has("behaviour_t_scope_s"):
+            t_s = np.asarray(self.array("behaviour_t_scope_s").compute(), np.float64)
+            if t_s.shape == (len(df),):
+                df.insert(0, "t_s", t_s)
+                return df
+        return self._on_scope_clock(df)
 
     @property
     def bouts(self) -> pd.DataFrame:
-        """Turn bouts; onset/offset times on the imaging clock."""
+        """Turn bouts: ``onset_s``/``offset_s`` on the imaging clock (rig times kept)."""
         return self._on_scope_clock(pd.read_parquet(self._need("bouts")))
 
     @property
     def splits(self) -> pd.DataFrame:
-        """Split points per trial; times on the imaging clock."""
+        """Split points per trial: ``split_s`` on the imaging clock (``split_rig_s`` kept)."""
         return self._on_scope_clock(pd.read_parquet(self._need("splits")))
 
     @property
     def critical_angle(self) -> dict[str, Any]:
-        """The critical-angle estimate with its interval (behaviour stage)."""
-        return dict(json.loads(self._need("critical_angle").read_text(encoding="utf-8")))
+        """The critical-angle estimate: ``estimate_rad``, ``ci_low_rad``, ``ci_high_rad``, ``n``.
+
+        Raises
+        ------
+        StoreError
+            The behaviour stage has not run or recorded no estimate.
+        """
+        crit = self.record("behaviour").get("info", {}).get("critical_angle")
+        if not isinstance(crit, Mapping):
+            raise StoreError(f"{self.root}/manifest.json: stages.behaviour.info has no "
+                             f"'critical_angle'; re-run `forkmap run --from behaviour`")
+        return dict(crit)
+
+    @property
+    def density(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """The folded trajectory density ``(fraction (y, x), x_edges_mm, y_edges_mm)``."""
+        counts = np.asarray(self.array("density").compute(), np.float64)
+        xe = np.asarray(self.array("density_x_edges_mm").compute(), np.float64)
+        ye = np.asarray(self.array("density_y_edges_mm").compute(), np.float64)
+        return counts, xe, ye
 
     @property
     def decoding_summary(self) -> dict[str, Any]:

@@ -13,6 +13,7 @@ from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
 from sklearn.utils.estimator_checks import parametrize_with_checks
 
+from pipeline.analysis.classify import NestedLogistic
 from pipeline.analysis.cv import BlockedKFold
 from pipeline.analysis.decode import (
     bout_windows,
@@ -42,7 +43,7 @@ def _session(rng, n=600, n_cells=80, n_premotor=20, planted=True):
     return X.astype(np.float32), turn, onsets, amp, trials
 
 
-@parametrize_with_checks([RidgePathCV(alphas=(0.1, 10.0))])
+@parametrize_with_checks([RidgePathCV(alphas=(0.1, 10.0)), NestedLogistic(Cs=(0.1, 1.0))])
 def test_sklearn_compatible_estimator(estimator, check):
     check(estimator)
 
@@ -186,3 +187,19 @@ def test_without_null_p_is_missing(rng):
     assert res.null_kind == "none" and np.all(np.isnan(res.r2.p))
     assert res.r2.earliest_lag_s is None
     json.dumps(res.to_dict(), allow_nan=False)
+
+
+def test_nested_logistic_matches_grid_search_choice(rng):
+    # reference: sklearn GridSearchCV over the same C grid and blocked folds, ROC AUC scoring
+    from sklearn.linear_model import LogisticRegression
+    from sklearn.model_selection import GridSearchCV
+
+    X = rng.normal(size=(120, 30))
+    y = (X[:, :3].sum(axis=1) + rng.normal(scale=2.0, size=120)) > 0
+    ours = NestedLogistic(Cs=(1e-3, 1e-2, 1e-1, 1.0), cv=3, tol=1e-8, max_iter=5000).fit(X, y)
+    Z = (X - X.mean(0)) / X.std(0)
+    ref = GridSearchCV(LogisticRegression(tol=1e-8, max_iter=5000),
+                       {"C": [1e-3, 1e-2, 1e-1, 1.0]}, cv=BlockedKFold(3),
+                       scoring="roc_auc").fit(Z, y)
+    assert ours.C_ == ref.best_params_["C"]
+    np.testing.assert_allclose(ours.decision_function(X), ref.decision_function(Z), atol=1e-5)

@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-import dataclasses
-import types
 from pathlib import Path
 
 import numpy as np
@@ -20,14 +18,11 @@ pynwb = pytest.importorskip("pynwb")
 
 
 def _settings(root: Path):
-    table = {"session": {"output": str(root), "name": "synthetic", "subject": "larva-1"},
+    table = {"session": {"output": str(root), "name": "synthetic", "subject": "larva-1",
+                         "subject_age": "P6D", "subject_sex": "U"},
              "imaging": {"raw": "raw/*.tif", "voxel_size_um": list(TRUTH["voxel_um"]),
                          "volume_rate_hz": TRUTH["rate_hz"], "planes_per_volume": 3}}
-    s = parse_config(table, base_dir=root.parent, check_files=False)
-    # subject age and sex are not config fields yet: stand in with a namespace
-    sess = types.SimpleNamespace(**dataclasses.asdict(s.session), subject_age="P6D",
-                                 subject_sex="U")
-    return types.SimpleNamespace(session=sess, imaging=s.imaging)
+    return parse_config(table, base_dir=root.parent, check_files=False)
 
 
 @pytest.fixture

@@ -13,12 +13,21 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from pipeline.align import ClockModel, ClockSegment
 from pipeline.store import Store
 
 TRUTH: dict[str, Any] = {
     "n_t": 40, "shape_zyx": (3, 20, 24), "rate_hz": 2.0, "voxel_um": (4.0, 1.0, 1.0),
     "offset_s": 1.5, "drift_ppm": 40.0, "rig_rate_hz": 20.0, "n_cells": 5,
 }
+
+#: the planted clock as the align stage records it (one segment, one pulse dropped)
+CLOCK = ClockModel(TRUTH["offset_s"], TRUTH["drift_ppm"],
+                   (ClockSegment(0.0, TRUTH["n_t"] / TRUTH["rate_hz"], TRUTH["offset_s"],
+                                 TRUTH["drift_ppm"], TRUTH["n_t"] - 1),),
+                   residual_rms_ms=0.3, residual_max_ms=0.9, matched=TRUTH["n_t"] - 1,
+                   dropped_volume_indices=(7,), spurious_pulse_indices=(),
+                   n_events=TRUTH["n_t"], n_pulses=TRUTH["n_t"] - 1)
 
 CONFIG = {
     "session": {"name": "synthetic", "subject": "larva-1", "species": "Danio rerio",
@@ -110,54 +119,62 @@ def build_synthetic_store(root: Path, rng: np.random.Generator, *,
     def behaviour(s):
         s.write_table("behaviour.parquet", beh)
         s.write_table("bouts.parquet", pd.DataFrame({
-            "onset_s": t_rig[[20, 200]], "offset_s": t_rig[[25, 210]], "duration_s": [0.25, 0.5],
-            "angle_rad": [0.3, -0.2], "direction": [1, -1], "trial": [0, 1]}))
+            "onset_rig_s": t_rig[[20, 200]], "offset_rig_s": t_rig[[25, 210]],
+            "onset_index": [20, 200], "offset_index": [25, 210], "duration_s": [0.25, 0.5],
+            "angle_rad": [0.3, -0.2], "peak_rad_s": [1.2, -0.8], "vigor": [1.0, 1.1],
+            "direction": ["left", "right"], "trial": [0, 1]}))
         s.write_table("splits.parquet", pd.DataFrame({
-            "trial": [0, 1], "split_s": t_rig[[100, 330]], "x_mm": [15.0, 15.0],
-            "y_mm": [0.0, 0.1], "subtended_rad": [0.9, 1.1], "chosen": ["t0", "t1"]}))
-        s.write_array("behaviour/density", rng.random((16, 20)),
-                      attrs={"x_edges_mm": np.linspace(0, 40, 21).tolist(),
-                             "y_edges_mm": np.linspace(-10, 10, 17).tolist()})
-        s.write_json("critical_angle.json", {"critical_angle_rad": 1.0, "ci_low_rad": 0.85,
-                                             "ci_high_rad": 1.15, "n_splits": 2})
+            "trial": [0, 1], "level": [1, 1], "split_index": [100, 330],
+            "split_rig_s": t_rig[[100, 330]], "x_mm": [15.0, 15.0], "y_mm": [0.0, 0.1],
+            "subtended_rad": [0.9, 1.1], "subtended_prev_rad": [0.89, 1.09],
+            "subtended_mid_rad": [0.895, 1.095], "dropped": ["t1", "t0"],
+            "chosen": ["t0", "t1"], "n_remaining": [2, 2]}))
+        s.write_array("behaviour/density", rng.random((16, 20)))
+        s.write_array("behaviour/x_edges_mm", np.linspace(0, 40, 21))
+        s.write_array("behaviour/y_edges_mm", np.linspace(-10, 10, 17))
 
     def align(s):
         plane_off = np.arange(nz) / (T["rate_hz"] * nz)
         s.write_array("align/plane_times_s", t_s[:, None] + plane_off[None, :])
+        s.write_array("align/behaviour_t_scope_s", CLOCK.rig_to_scope(t_rig))
 
     lags = np.linspace(-2, 1, 7)
 
     def decode(s):
         # shaped like the decode stage's document: one entry per score, each with lags_s
-        curve = {"metric": "r2", "lags_s": lags.tolist(),
-                 "mean": (0.3 * np.exp(-lags ** 2)).tolist(),
-                 "folds": rng.random((5, lags.size)).tolist(),
-                 "null_mean": [0.0] * lags.size, "null_p95": [0.08] * lags.size,
-                 "earliest_lag_s": -1.5, "best_lag_s": 0.0, "alpha": 10.0,
-                 "confusion": [[10, 2], [3, 9]], "classes": ["left", "right"]}
-        s.write_json("decode.json", {"turn_r2": curve, "null_kind": "trial shuffle",
-                                     "n_samples": n_t})
+        def curve(metric, peak):
+            return {"metric": metric, "lags_s": lags.tolist(),
+                    "mean": (peak * np.exp(-(lags + 1.5) ** 2)).tolist(),
+                    "folds": rng.random((5, lags.size)).tolist(),
+                    "null_mean": [0.0] * lags.size, "null_p95": [0.08] * lags.size,
+                    "earliest_lag_s": -1.5, "best_lag_s": -1.5, "n_null": 20}
+        s.write_json("decode.json", {
+            "turn_r2": curve("r2", 0.3), "bout_auc": curve("auc", 0.8),
+            "bout_confusion": {"lag_s": 0.0, "classes": ["left", "right"],
+                               "confusion": [[10, 2], [3, 9]], "n_bouts": 24},
+            "null_kind": "trial-shuffle", "n_samples": n_t, "rate_hz": T["rate_hz"],
+            "weights_lag_s": -1.5})
         s.write_array("decode/weights", rng.normal(size=n_c))
 
     def tuning(s):
         rows = [{"cell": c, "z_um": cells.z_um[c - 1], "y_um": cells.y_um[c - 1],
                  "x_um": cells.x_um[c - 1], "target": tgt, "epoch": ep,
                  "preferred_rad": float(rng.uniform(-np.pi, np.pi)),
-                 "selectivity": float(rng.random()), "unique_variance": 0.01,
+                 "selectivity": float(rng.random()), "unique_r2": 0.01,
                  "p": float(rng.random()), "q": float(rng.random()), "tuned": bool(c % 2)}
                 for c in cells.id for tgt in ("t0", "t1") for ep in ("pre", "post")]
         s.write_table("tuning.parquet", pd.DataFrame(rows))
-        s.write_array("tuning/curves", rng.random((n_c, 2, 2, 12)),
+        s.write_array("tuning/curves", rng.random((2, 2, 12, n_c)),
                       attrs={"bin_centres_rad": np.linspace(-np.pi, np.pi, 12, endpoint=False)
-                             .tolist(), "dims": ["cell", "target", "epoch", "bin"]})
+                             .tolist(), "targets": ["t0", "t1"], "epochs": ["pre", "post"]},
+                      dimension_names=("target", "epoch", "bin", "cell"))
 
-    info_align = {"offset_s": T["offset_s"], "drift_ppm": T["drift_ppm"],
-                  "residuals_ms": rng.normal(0, 0.3, n_t).tolist(), "matched": n_t,
-                  "dropped": 1, "spurious": 2,
-                  "trigger_intervals_s": (0.5 + rng.normal(0, 1e-3, n_t - 1)).tolist()}
+    info_align = {"clock": CLOCK.to_dict(), "residual_rms_ms": 0.3, "matched": n_t}
+    info_behaviour = {"critical_angle": {"estimate_rad": 1.0, "ci_low_rad": 0.85,
+                                         "ci_high_rad": 1.15, "n": 2}}
     plan = [("ingest", ingest, {}, ()), ("motion", motion, {}, ("2 volumes flagged",)),
             ("cells", cells_stage, {}, ()), ("traces", traces, {}, ()),
-            ("behaviour", behaviour, {}, ()), ("align", align, info_align, ("1 pulse dropped",)),
+            ("behaviour", behaviour, info_behaviour, ()), ("align", align, info_align, ("1 pulse dropped",)),
             ("decode", decode, {}, ()), ("tuning", tuning, {}, ())]
     for name, fn, info, warns in plan:
         if name not in skip:

@@ -11,7 +11,7 @@ from test_report_synthetic import TRUTH, build_synthetic_store
 
 import pipeline.session as session_mod
 from pipeline.errors import StoreError
-from pipeline.session import LabelledArray, Session, decode_table, rig_to_scope_s
+from pipeline.session import LabelledArray, Session, decode_table
 
 
 @pytest.fixture
@@ -45,28 +45,46 @@ def test_behaviour_on_imaging_clock_recovers_planted_clock(sess):
     assert sess.target_names() == ["t0", "t1"]
 
 
-def test_rig_to_scope_inverts_the_documented_model():
+def test_clock_model_inverts_the_documented_model(sess):
     t = np.array([0.0, 10.0, 1000.0])
-    clock = {"offset_s": 2.0, "drift_ppm": 100.0}
     # DEVELOPERS.md clock model: t_rig = offset_s + (1 + drift_ppm * 1e-6) * t_scope
-    t_rig = 2.0 + (1 + 100e-6) * t
-    np.testing.assert_allclose(rig_to_scope_s(t_rig, clock), t, atol=1e-12)
-    with pytest.raises(StoreError, match="expected keys 'offset_s'"):
-        rig_to_scope_s(t_rig, {"drift_ppm": 1.0})
+    t_rig = TRUTH["offset_s"] + (1 + TRUTH["drift_ppm"] * 1e-6) * t
+    np.testing.assert_allclose(sess.clock_model.rig_to_scope(t_rig), t, atol=1e-9)
+    assert sess.clock["dropped_volume_indices"] == [7]
+    splits = sess.splits
+    assert {"split_s", "split_rig_s"} <= set(splits.columns)
+    np.testing.assert_allclose(splits["split_s"], np.array([100, 330]) / TRUTH["rig_rate_hz"],
+                               atol=1e-9)
+
+
+def test_clock_and_critical_angle_errors(tmp_path, rng):
+    from test_report_synthetic import _stage, build_synthetic_store
+
+    store = build_synthetic_store(tmp_path / "out", rng, skip=("align", "behaviour"))
+    _stage(store, "align", lambda s: None, info={"matched": 3})
+    _stage(store, "behaviour", lambda s: None, info={})
+    s = Session.open(tmp_path / "out")
+    with pytest.raises(StoreError, match="stages.align.info has no 'clock'"):
+        _ = s.clock_model
+    with pytest.raises(StoreError, match="stages.behaviour.info has no 'critical_angle'"):
+        _ = s.critical_angle
 
 
 def test_tables_and_volumes(sess):
     assert len(sess.tuning) == TRUTH["n_cells"] * 4
     dec = sess.decoding
-    assert dec["lag_s"].size == 7 and {"mean", "null_p95", "decoder"} <= set(dec.columns)
+    assert dec["lag_s"].size == 14 and {"mean", "null_p95", "decoder"} <= set(dec.columns)
     assert [c for c in dec.columns if c.startswith("folds_")] == [f"folds_{i}" for i in range(5)]
     assert dec.attrs["turn_r2"]["earliest_lag_s"] == -1.5
-    assert dec.attrs["null_kind"] == "trial shuffle"
+    assert dec.attrs["null_kind"] == "trial-shuffle"
+    assert dec.attrs["bout_confusion"]["confusion"] == [[10, 2], [3, 9]]
     assert sess.volumes.shape == (TRUTH["n_t"], *TRUTH["shape_zyx"])
     assert sess.labels.max() == TRUTH["n_cells"]
     assert sess.motion["flagged"].sum() == 2
     assert "align" in sess.manifest["stages"]
-    assert sess.critical_angle["critical_angle_rad"] == 1.0
+    assert sess.critical_angle["estimate_rad"] == 1.0
+    counts, xe, ye = sess.density
+    assert counts.shape == (ye.size - 1, xe.size - 1)
     assert "stages done" in repr(sess)
 
 

@@ -21,7 +21,7 @@ import pandas as pd
 from pipeline.align.clocks import ClockModel, fit_clock, pulses_from_timestamps, rising_edges
 from pipeline.align.resample import resample_behaviour
 from pipeline.align.timing import plane_times
-from pipeline.errors import InputError
+from pipeline.errors import AlignmentError, InputError
 from pipeline.stages import stage
 
 __all__ = ["run_align", "read_times", "acquired_plane_times", "align_kernels"]
@@ -57,10 +57,24 @@ def acquired_plane_times(imaging: Any, n_volumes: int) -> np.ndarray:
 
 def align_kernels(table: pd.DataFrame, geometry: dict[str, np.ndarray],
                   bout_onsets_rig_s: np.ndarray, acquired_s: np.ndarray, kept_planes: list[int],
-                  sync: Any, pulses_rig_s: np.ndarray | None = None
+                  sync: Any, pulses_rig_s: np.ndarray | None = None, *,
+                  source: str = "rig log", pulse_source: str | None = None
                   ) -> tuple[ClockModel, np.ndarray, float, dict[str, np.ndarray]]:
-    """Clock model, kept-plane times, exposure and resampled variables (no store I/O)."""
+    """Clock model, kept-plane times, exposure and resampled variables (no store I/O).
+
+    ``source`` names the rig log and ``pulse_source`` where the pulses come from (default: the
+    log's trigger column) in error messages.
+
+    Raises
+    ------
+    AlignmentError
+        No trigger pulse; a log that covers less rig time than ``sync.min_match_fraction`` of
+        the imaging session; too few events matched (from :func:`fit_clock`). The message
+        starts with the file (and column) the pulses came from.
+    """
     t_rig = table["t_rig_s"].to_numpy(np.float64)
+    if pulse_source is None:
+        pulse_source = f"{source}, column {sync.trigger_column!r}"
     if pulses_rig_s is None:
         pulses_rig_s = rising_edges(table[sync.trigger_column].to_numpy(np.float64), t_rig,
                                     min_interval_s=sync.debounce_s, edge_time=sync.edge_time)
@@ -68,8 +82,13 @@ def align_kernels(table: pd.DataFrame, geometry: dict[str, np.ndarray],
         events = acquired_s.min(axis=1)
     else:
         events = np.sort(acquired_s.ravel())
-    model = fit_clock(pulses_rig_s, events, min_match_fraction=sync.min_match_fraction,
-                      tolerance=sync.match_tolerance, jump_threshold_ms=sync.jump_threshold_ms)
+    _check_coverage(t_rig, np.asarray(pulses_rig_s), events, sync, source, pulse_source)
+    try:
+        model = fit_clock(pulses_rig_s, events, min_match_fraction=sync.min_match_fraction,
+                          tolerance=sync.match_tolerance,
+                          jump_threshold_ms=sync.jump_threshold_ms)
+    except AlignmentError as exc:
+        raise AlignmentError(f"{pulse_source}: {exc}") from None
     kept = acquired_s[:, kept_planes]
     srt = np.sort(acquired_s[0])
     plane_period_s = float(np.median(np.diff(srt))) if srt.size > 1 else float(
@@ -86,6 +105,25 @@ def align_kernels(table: pd.DataFrame, geometry: dict[str, np.ndarray],
                              events_rig_s={"bout_onsets": bout_onsets_rig_s})
     out["bout_fraction"] = out.pop("bout")
     return model, kept, exposure_s, out
+
+
+def _check_coverage(t_rig_s: np.ndarray, pulses_rig_s: np.ndarray, events_s: np.ndarray,
+                    sync: Any, source: str, pulse_source: str) -> None:
+    """Fail early, with a clear message, on no pulses or a log shorter than the imaging."""
+    n = t_rig_s.size
+    if pulses_rig_s.size == 0:
+        raise AlignmentError(f"{pulse_source}: no trigger pulse in the {n} rows (no rising edge "
+                             f"above 0.5); expected one pulse per {sync.pulse_per} "
+                             f"({events_s.size} imaging events)")
+    period_s = float(np.median(np.diff(events_s))) if events_s.size > 1 else 0.0
+    imaging_s = float(events_s[-1] - events_s[0]) + period_s
+    log_s = float(t_rig_s[-1] - t_rig_s[0]) if n else 0.0
+    if log_s < sync.min_match_fraction * imaging_s:
+        raise AlignmentError(f"{source}: the log covers {log_s:.1f} s of rig time (rows 1..{n}) "
+                             f"but the imaging session lasts {imaging_s:.1f} s "
+                             f"({events_s.size} imaging events); the log is shorter than the "
+                             f"imaging session (sync.min_match_fraction = "
+                             f"{sync.min_match_fraction:g})")
 
 
 _UNITS = {"x_mm": "mm", "y_mm": "mm", "turn_rad_s": "rad/s", "vigor": "rig units",
@@ -109,15 +147,23 @@ def run_align(settings: Any, store: Any, compute: Any) -> None:
     flyback = set(imaging.flyback_planes)
     kept_planes = [p for p in range(imaging.planes_per_volume) if p not in flyback]
     pulses = None
+    source = f"rig log {settings.behaviour.log}"
+    pulse_source = None
     if sync.timestamps is not None:
+        pulse_source = f"sync.timestamps {sync.timestamps}"
         pulses = pulses_from_timestamps(read_times(sync.timestamps, what="sync.timestamps"),
                                         min_interval_s=sync.debounce_s,
                                         source=str(sync.timestamps))
     model, kept, exposure_s, out = align_kernels(
         table, geometry, bouts["onset_rig_s"].to_numpy(np.float64), acquired, kept_planes, sync,
-        pulses)
+        pulses, source=source, pulse_source=pulse_source)
     for note in model.notes:
         store.warn(note)
+    if model.spurious_pulse_indices:
+        k = len(model.spurious_pulse_indices)
+        store.warn(f"{k} trigger pulse{'s were' if k > 1 else ' was'} spurious (matched no "
+                   f"imaging event) and ignored (first pulse indices: "
+                   f"{list(model.spurious_pulse_indices[:5])})")
     if model.dropped_volume_indices:
         store.warn(f"{len(model.dropped_volume_indices)} imaging events had no trigger pulse "
                    f"(first: {list(model.dropped_volume_indices[:5])})")

@@ -18,12 +18,9 @@ from typing import Any
 import numpy as np
 from scipy import stats as _sps
 from sklearn.base import clone
-from sklearn.linear_model import LogisticRegression
 from sklearn.metrics import balanced_accuracy_score, roc_auc_score
-from sklearn.model_selection import GridSearchCV
-from sklearn.pipeline import make_pipeline
-from sklearn.preprocessing import StandardScaler
 
+from pipeline.analysis.classify import NestedLogistic
 from pipeline.analysis.cv import BlockedKFold, TrialKFold
 from pipeline.analysis.ridge import (
     RidgeBasis,
@@ -356,9 +353,7 @@ class _Rows:
 
 
 def _default_classifier(gap):
-    grid = {"logisticregression__C": [1e-3, 1e-2, 1e-1, 1.0, 10.0]}
-    return GridSearchCV(make_pipeline(StandardScaler(), LogisticRegression(max_iter=2000)),
-                        grid, cv=BlockedKFold(3, gap=gap))
+    return NestedLogistic(Cs=(1e-3, 1e-2, 1e-1, 1.0), cv=3, gap=gap)
 
 
 def decode_bouts(X, onsets, left, *, lags, rate_hz, window, angle=None, n_splits=5, gap=0,
@@ -384,8 +379,9 @@ def decode_bouts(X, onsets, left, *, lags, rate_hz, window, angle=None, n_splits
     gap : int, default=0
         Bouts removed from training on each side of a test fold.
     classifier : sklearn classifier, optional
-        Default: L2 logistic regression after standardisation, C chosen by an inner
-        ``GridSearchCV`` over blocked folds of the training bouts.
+        Default: :class:`~pipeline.analysis.classify.NestedLogistic`, L2 logistic regression
+        after standardisation with C chosen by ROC AUC over blocked inner folds of the
+        training bouts.
     regressor : sklearn regressor, optional
         Default :class:`~pipeline.analysis.ridge.RidgePathCV`.
     n_null : int, default=0

@@ -24,7 +24,13 @@ import pandas as pd
 import zarr
 
 from pipeline.analysis.cv import gap_samples
-from pipeline.analysis.decode import decode_bouts, decode_continuous, lag_samples
+from pipeline.analysis.decode import (
+    bout_windows,
+    decode_bouts,
+    decode_continuous,
+    lag_samples,
+    make_splitter,
+)
 from pipeline.analysis.stats import circular_shift_indices, trial_shuffle_indices
 from pipeline.analysis.tuning import (
     curve_preference,
@@ -141,6 +147,10 @@ def run_decode(settings, store, compute):
                                 n_splits=ds.n_folds, gap=1, n_null=ds.n_null_bouts,
                                 trial_of_bout=trial_b, seed=ds.seed)
             doc.update(bres.to_dict())
+            doc["bout_confusion"] = _bout_confusion(
+                X, onset, bouts["direction"].to_numpy() == "left", trial_b,
+                lag=round(bres.auc.best_lag_s * rate), rate_hz=rate, window=window,
+                n_splits=ds.n_folds)
         except InputError as exc:
             store.warn(f"bout decoders skipped: {exc}")
     store.write_json("decode.json", doc)
@@ -153,6 +163,58 @@ def run_decode(settings, store, compute):
                     "null_kind": res.null_kind})
 
 
+def _bout_confusion(X, onset, left, trial_of_bout, *, lag, rate_hz, window, n_splits):
+    """Confusion matrix of the bout-direction decoder at one lag, summed over test folds.
+
+    The same features, folds and classifier as :func:`decode_bouts` (whole-trial folds, the
+    default nested logistic regression), refitted once at the best lag to keep each test
+    bout's predicted label. Rows are the true direction, columns the predicted one, in the
+    order of ``classes``.
+    """
+    from sklearn.base import clone
+    from sklearn.metrics import confusion_matrix
+
+    from pipeline.analysis import decode as _decode
+
+    F, ok = bout_windows(X, onset, window=window, lags=np.array([lag]))
+    keep = np.flatnonzero(ok)
+    feats, y = F[0, keep], np.where(left[keep], "left", "right")
+    groups = None if trial_of_bout is None else np.asarray(trial_of_bout)[keep]
+    clf = _decode._default_classifier(1)
+    pred = np.full(y.shape, "", dtype=object)
+    for tr, te in make_splitter(n_splits, gap=1, groups=groups).split(y, groups=groups):
+        if np.unique(y[tr]).size < 2:
+            continue
+        pred[te] = clone(clf).fit(feats[tr], y[tr]).predict(feats[te])
+    done = pred != ""
+    classes = ["left", "right"]
+    m = confusion_matrix(y[done], pred[done].astype(str), labels=classes)
+    return {"lag_s": lag / float(rate_hz), "classes": classes, "confusion": m.tolist(),
+            "n_bouts": int(done.sum())}
+
+
+def _target_sets(finite, min_samples):
+    """Which samples test which targets, when some targets are absent (NaN bearing) at times.
+
+    Targets present on every sample of the epoch are tested together on all of them; a target
+    present on only some samples (a third target shown in some trials) is tested with the
+    always-present ones on the samples where it is present. Returns ``(sample mask, targets
+    in the model, targets whose result is kept)`` triples.
+    """
+    always = [k for k in range(finite.shape[1]) if finite[:, k].all()]
+    sets = []
+    if always:
+        sets.append((np.ones(finite.shape[0], bool), always, always))
+    for k in range(finite.shape[1]):
+        if k in always or not finite[:, k].any():
+            continue
+        model = [*always, k]
+        keep = finite[:, model].all(axis=1)
+        if keep.sum() >= min_samples:
+            sets.append((keep, model, [k]))
+    return sets
+
+
 def _tuning_task(rows, activity_path, bearing, nuisance, trial, masks, options):
     """One block of cells of one plane: every epoch's test and curves (picklable)."""
     act = np.asarray(zarr.open_array(activity_path, mode="r").oindex[rows, :]).T
@@ -160,25 +222,31 @@ def _tuning_task(rows, activity_path, bearing, nuisance, trial, masks, options):
     for e, (epoch, mask) in enumerate(masks.items()):
         if mask.sum() < 10:
             continue
-        idx = np.flatnonzero(mask)
-        if options["null"] == "trial" and trial is not None and np.unique(trial[idx]).size > 1:
-            perms = trial_shuffle_indices(trial[idx], options["n_perm"], seed=options["seed"] + e)
-        else:
-            perms = circular_shift_indices(idx.size, options["n_perm"],
-                                           min_shift=min(options["min_shift"], idx.size // 2),
-                                           seed=options["seed"] + e)
-        res = unique_variance_test(act[idx], bearing[idx],
-                                   nuisance=None if nuisance is None else nuisance[idx],
-                                   perm_index=perms, n_harmonics=options["n_harmonics"])
-        for k in range(bearing.shape[1]):
-            curves, _, centres = tuning_curves(act[idx], bearing[idx, k],
-                                               n_bins=options["n_bins"],
-                                               min_count=options["min_count"])
-            pref, sel = curve_preference(curves, centres)
-            out.append({"epoch": epoch, "target": k, "rows": rows, "preferred_rad": pref,
-                        "selectivity": sel, "unique_r2": res.unique_r2[k], "p": res.p[k],
-                        "regression_rad": res.bearing_rad[k], "curves": curves,
-                        "centres": centres})
+        epoch_idx = np.flatnonzero(mask)
+        for sub, model, keep in _target_sets(np.isfinite(bearing[epoch_idx]), 10):
+            idx = epoch_idx[sub]
+            if (options["null"] == "trial" and trial is not None
+                    and np.unique(trial[idx]).size > 1):
+                perms = trial_shuffle_indices(trial[idx], options["n_perm"],
+                                              seed=options["seed"] + e)
+            else:
+                perms = circular_shift_indices(idx.size, options["n_perm"],
+                                               min_shift=min(options["min_shift"],
+                                                             idx.size // 2),
+                                               seed=options["seed"] + e)
+            res = unique_variance_test(act[idx], bearing[np.ix_(idx, model)],
+                                       nuisance=None if nuisance is None else nuisance[idx],
+                                       perm_index=perms, n_harmonics=options["n_harmonics"])
+            for k in keep:
+                j = model.index(k)
+                curves, _, centres = tuning_curves(act[idx], bearing[idx, k],
+                                                   n_bins=options["n_bins"],
+                                                   min_count=options["min_count"])
+                pref, sel = curve_preference(curves, centres)
+                out.append({"epoch": epoch, "target": k, "rows": rows, "preferred_rad": pref,
+                            "selectivity": sel, "unique_r2": res.unique_r2[j], "p": res.p[j],
+                            "regression_rad": res.bearing_rad[j], "curves": curves,
+                            "centres": centres})
     return out
 
 

@@ -133,6 +133,18 @@ def _header(path: Path, kind: str) -> list[str]:
     return list(pq.ParquetFile(path).schema_arrow.names)
 
 
+def _check_text(path: Path, where: _Where, *, n_bytes: int = 65_536) -> None:
+    """Fail on a binary file given as CSV (a NUL byte in its first ``n_bytes`` bytes)."""
+    with path.open("rb") as fh:
+        head = fh.read(n_bytes)
+    nul = head.find(b"\0")
+    if nul >= 0:
+        line = head.count(b"\n", 0, nul) + 1
+        raise where.fail(f"file line {line} (byte {nul}) holds a NUL byte: not a text CSV file; "
+                         "expected comma-separated text (set behaviour.format = 'parquet' for "
+                         "a Parquet log)")
+
+
 def _resolve(spec: LogSpec, header: list[str], where: _Where) -> tuple[dict[str, str],
                                                                        list[tuple[str, str, str]]]:
     unknown = [k for k in spec.columns if k not in CANONICAL_COLUMNS]
@@ -329,6 +341,8 @@ def read_log(path: str | Path, spec: LogSpec | None = None, *,
     where = _Where(path, kind)
     if not path.is_file():
         raise where.fail("file does not exist")
+    if kind == "csv":
+        _check_text(path, where)
     try:
         header = _header(path, kind)
     except (pd.errors.ParserError, pd.errors.EmptyDataError, OSError, ValueError) as exc:

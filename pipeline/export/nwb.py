@@ -263,15 +263,18 @@ def _trials(nwb: Any, session: Session, beh: pd.DataFrame) -> None:
         return
     splits = session.splits if session.has("splits") else pd.DataFrame(columns=["trial"])
     split_col = next((c for c in ("split_s", "t_split_s", "split_time_s") if c in splits), None)
-    nwb.add_trial_column(name="split_time", description="time of the split towards one "
-                         "target (s, imaging clock; NaN without a split)")
+    nwb.add_trial_column(name="split_time", description="time of the trial's first split "
+                         "(s, imaging clock; NaN without a split)")
     nwb.add_trial_column(name="chosen_target", description="target chosen after the split")
     nwb.add_trial_column(name="trial_id", description="trial number in the rig log")
+    if {"level", "split_s"} <= set(splits.columns):
+        splits = splits.sort_values(["trial", "level"])
     trial: Any
-    for trial, rows in beh.groupby("trial", sort=True):
+    for trial, rows in beh[beh["trial"] >= 0].groupby("trial", sort=True):  # -1: between trials
         hit = splits[splits["trial"] == trial] if "trial" in splits else splits.iloc[:0]
+        # the first split's time; the target finally chosen (last level's choice)
         split = float(hit[split_col].iloc[0]) if split_col and len(hit) else float("nan")
-        chosen = str(hit["chosen"].iloc[0]) if "chosen" in hit and len(hit) else ""
+        chosen = str(hit["chosen"].iloc[-1]) if "chosen" in hit and len(hit) else ""
         nwb.add_trial(start_time=float(rows["t_s"].min()), stop_time=float(rows["t_s"].max()),
                       split_time=split, chosen_target=chosen, trial_id=int(trial))
 

@@ -69,12 +69,6 @@ def motion_figure(t_s: np.ndarray, shift_um: np.ndarray, *, quality: np.ndarray 
     return fig
 
 
-def _outline(mask2d: np.ndarray) -> np.ndarray:
-    from skimage.segmentation import find_boundaries
-
-    return find_boundaries(mask2d, mode="inner")
-
-
 def projection_figure(image_zyx: np.ndarray, voxel_size_um: Sequence[float], *,
                       labels_zyx: np.ndarray | None = None, cmap: str = "gray") -> Figure:
     """Maximum projections (top: over z; side: over y) with cell outlines."""
@@ -90,11 +84,12 @@ def projection_figure(image_zyx: np.ndarray, voxel_size_um: Sequence[float], *,
         ax.imshow(proj, cmap=cmap, vmin=lo, vmax=hi, extent=ext, interpolation="nearest",
                   aspect="equal" if ax is top else "auto")
     if labels_zyx is not None:
-        for ax, proj, ext in ((top, labels_zyx.max(axis=0), ext_top),
-                              (side, labels_zyx.max(axis=1), ext_side)):
-            edge = np.ma.masked_where(~_outline(proj), np.ones(proj.shape))
-            ax.imshow(edge, cmap="autumn", vmin=0, vmax=1, extent=ext, interpolation="nearest",
-                      aspect=ax.get_aspect())
+        # thin contour lines at voxel resolution: filled boundary pixels hide small images
+        mask = labels_zyx.max(axis=0) > 0
+        ys = (np.arange(ny) + 0.5) * vy
+        xs = (np.arange(nx) + 0.5) * vx
+        top.contour(xs, ys, mask.astype(float), levels=[0.5], colors=["#F0E442"],
+                    linewidths=0.6)
     top.set_ylabel("y (µm)")
     side.set_ylabel("z (µm)")
     side.set_xlabel("x (µm)")
@@ -183,8 +178,8 @@ def density_figure(density: np.ndarray, *, x_edges_mm: np.ndarray | None = None,
         ax.axvline(split_x_mm, color="w", ls="--", lw=1, label="median split")
         ax.legend(fontsize=8, loc="upper left")
     unit = "mm" if x_edges_mm is not None else "bin"
-    ax.set_xlabel(f"distance along the target axis ({unit})")
-    ax.set_ylabel(f"lateral position, folded ({unit})")
+    ax.set_xlabel(f"lateral position |x|, folded ({unit})")
+    ax.set_ylabel(f"forward position y, targets ahead ({unit})")
     return fig
 
 
@@ -202,7 +197,8 @@ def split_angle_figure(angles_rad: np.ndarray, *, critical_rad: float | None = N
                    label=f"critical angle {np.degrees(critical_rad):.1f}°")
     ax.set_xlabel("subtended angle at split (degrees)")
     ax.set_ylabel("splits")
-    ax.legend(fontsize=8, frameon=False)
+    if ax.get_legend_handles_labels()[0]:
+        ax.legend(fontsize=8, frameon=False)
     return fig
 
 
@@ -302,9 +298,13 @@ def bearing_map_figure(panels: Sequence[tuple[str, np.ndarray, np.ndarray, np.nd
 
 
 def tuning_curves_figure(centres_rad: np.ndarray, curves: Sequence[np.ndarray],
-                         names: Sequence[str],
-                         *, unit: str = "mean ΔF/F") -> Figure:
-    """Tuning curves (activity against egocentric bearing) of a few cells."""
+                         names: Sequence[str], *, series: Sequence[str] = (),
+                         unit: str = "mean ΔF/F") -> Figure:
+    """Tuning curves (activity against egocentric bearing) of a few cells.
+
+    ``curves[i]`` is ``(n_series, n_bins)`` (or ``(n_bins,)``); ``series`` names the rows
+    (e.g. the epochs) in a legend on the first panel.
+    """
     n = len(curves)
     cols = min(n, 4)
     rows = int(np.ceil(n / cols)) if n else 1
@@ -316,11 +316,14 @@ def tuning_curves_figure(centres_rad: np.ndarray, curves: Sequence[np.ndarray],
         if curve.ndim == 1:
             curve = curve[None]
         for k, c in enumerate(curve):
-            ax.plot(deg, c, marker=".", lw=1, color=OKABE_ITO[k % len(OKABE_ITO)])
+            ax.plot(deg, c, marker=".", lw=1, color=OKABE_ITO[k % len(OKABE_ITO)],
+                    label=series[k] if k < len(series) else None)
         ax.set_title(name, fontsize=8)
         ax.set_xlabel("bearing (°)", fontsize=8)
         ax.set_ylabel(unit, fontsize=8)
         ax.tick_params(labelsize=7)
+    if n and len(series):
+        axes[0].legend(fontsize=6, frameon=False)
     for ax in axes[n:]:
         ax.set_visible(False)
     return fig

@@ -120,7 +120,7 @@ def _motion(ctx: _Ctx) -> str:
                                                             labels_zyx=labels),
                                   f"Maximum projections of the registered {name} (top: over "
                                   "z; bottom: over y), each scaled to its own 1st-99.5th "
-                                  "percentile; detected cells outlined in yellow."))
+                                  "percentile (µm); detected cells outlined in yellow on the top view."))
     return "\n".join(out)
 
 
@@ -146,27 +146,53 @@ def _traces(ctx: _Ctx) -> str:
     return "\n".join(out)
 
 
+def _pulses(s: Session) -> tuple[np.ndarray, np.ndarray]:
+    """Trigger pulse times (rig clock) and each one's residual against the clock model (ms).
+
+    The pulses are found again in the behaviour log with the configured ``sync`` options;
+    a pulse's residual is its time minus the model's rig time of the nearest volume start.
+    """
+    from pipeline.align import rising_edges
+
+    sync = s.manifest.get("config", {}).get("sync", {})
+    beh = pd.read_parquet(s._need("behaviour"))
+    col = str(sync.get("trigger_column", "trigger"))
+    if col not in beh or "t_rig_s" not in beh:
+        return np.empty(0), np.empty(0)
+    pulses = rising_edges(beh[col].to_numpy(np.float64), beh["t_rig_s"].to_numpy(np.float64),
+                          min_interval_s=float(sync.get("debounce_s", 0.002)),
+                          edge_time=sync.get("edge_time", "midpoint"))
+    starts_rig = s.clock_model.scope_to_rig(s.time_s)
+    near = np.clip(np.searchsorted(starts_rig, pulses), 1, max(starts_rig.size - 1, 1))
+    left, right = starts_rig[near - 1], starts_rig[np.minimum(near, starts_rig.size - 1)]
+    nearest = np.where(np.abs(pulses - left) <= np.abs(pulses - right), left, right)
+    return pulses, (pulses - nearest) * 1e3
+
+
 def _sync(ctx: _Ctx) -> str:
-    info = ctx.session.clock
-    iv_key = _pick(info, "trigger_intervals_s", "intervals_s", contains=("interval",))
-    res_key = _pick(info, "residuals_ms", "residual_ms", contains=("residual",))
-    counts = {}
-    for name in ("matched", "dropped", "spurious"):
-        key = _pick(info, name, f"n_{name}", f"{name}_pulses", contains=(name,))
-        if key is not None:
-            v = info[key]
-            counts[name] = len(v) if isinstance(v, list) else int(v)
-    res = np.asarray(info[res_key], float) if res_key else None
-    facts: list[tuple[str, Any]] = [(k, info[k]) for k in ("offset_s", "drift_ppm") if k in info]
-    if res is not None and res.size:
-        facts.append(("residual RMS (ms)", float(np.sqrt(np.mean(res ** 2)))))
-    facts += list(counts.items())
-    fig = F.sync_figure(np.asarray(info[iv_key], float) if iv_key else None, res, counts)
+    s = ctx.session
+    clock = s.clock
+    pulses, res_ms = _pulses(s)
+    dropped = list(clock.get("dropped_volume_indices", []))
+    spurious = list(clock.get("spurious_pulse_indices", []))
+    counts = {"matched": int(clock.get("matched", 0)), "dropped": len(dropped),
+              "spurious": len(spurious)}
+    segs = clock.get("segments", [])
+    facts: list[tuple[str, Any]] = [
+        ("clock model", "t_rig = offset + (1 + drift_ppm × 1e-6) × t_scope"),
+        ("offset (s)", float(clock["offset_s"])), ("drift (ppm)", float(clock["drift_ppm"])),
+        ("segments (between clock jumps)", len(segs)),
+        ("residual RMS / max (ms)", f"{clock.get('residual_rms_ms', float('nan')):.3g} / "
+                                    f"{clock.get('residual_max_ms', float('nan')):.3g}"),
+        ("pulses matched / volumes", f"{counts['matched']} / {clock.get('n_events', '')}"),
+        ("volumes without a pulse (index)", ", ".join(map(str, dropped)) or "none"),
+        ("pulses without a volume (index)", ", ".join(map(str, spurious)) or "none")]
+    fig = F.sync_figure(np.diff(pulses) if pulses.size > 1 else None, res_ms, counts)
     return facts_block(facts) + ctx.figure(
-        "sync", fig, "Left: interval between successive trigger pulses in the rig log (ms). "
-        "Middle: residual of each matched pulse after the linear clock fit t_rig = offset + "
-        "(1 + drift) t_scope (ms). Right: pulses matched to volumes, volumes without a pulse "
-        "(dropped) and pulses without a volume (spurious).")
+        "sync", fig, "Left: interval between successive trigger pulses in the rig log (ms; "
+        "a dropped pulse shows as a doubled interval). Middle: each pulse's time minus the "
+        "clock model's rig time of the nearest volume start (ms). Right: pulses matched to "
+        "volumes, volumes without a pulse (dropped) and pulses without a volume (spurious).")
 
 
 def _behaviour(ctx: _Ctx) -> str:
@@ -175,85 +201,113 @@ def _behaviour(ctx: _Ctx) -> str:
     targets = s.target_names()
     # positions and angles only: no clock conversion needed
     splits = pd.read_parquet(s._need("splits")) if s.has("splits") else pd.DataFrame()
-    chosen = dict(zip(splits["trial"], splits["chosen"].astype(str), strict=False)) if {
-        "trial", "chosen"} <= set(splits.columns) else {}
-    groups = beh.groupby("trial") if "trial" in beh else [(0, beh)]
-    trials = [(g["x_mm"].to_numpy(), g["y_mm"].to_numpy(), chosen.get(k, "")) for k, g in groups]
+    final = (splits.sort_values("level").groupby("trial").last() if {
+        "trial", "level", "chosen"} <= set(splits.columns) else pd.DataFrame())
+    chosen: dict[Any, str] = ({k: str(v) for k, v in final["chosen"].items()} if len(final)
+                              else {})
+    in_trial = beh[beh["trial"] >= 0] if "trial" in beh else beh
+    groups: Any = in_trial.groupby("trial") if "trial" in in_trial else [(0, in_trial)]
+    trials = [(g["x_mm"].to_numpy(), g["y_mm"].to_numpy(), chosen.get(k, ""))
+              for k, g in groups]
     sxy = splits[["x_mm", "y_mm"]].to_numpy() if {"x_mm", "y_mm"} <= set(splits.columns) else None
     txy = {t: (float(np.nanmedian(beh[f"{t}_x_mm"])), float(np.nanmedian(beh[f"{t}_y_mm"])))
-           for t in targets}
+           for t in targets if np.isfinite(beh[f"{t}_x_mm"]).any()}
     out = [ctx.figure("trajectories", F.trajectory_figure(trials, sxy, targets, txy),
-                      f"Trajectories of the {len(trials)} trials in the virtual world, coloured "
-                      "by the target chosen; crosses: split points; stars: median target "
-                      "positions.")]
-    if s.has("density"):
-        import zarr
-
-        arr = zarr.open_array(str(s.where("density")), mode="r")
-        at: dict[str, Any] = dict(arr.attrs)
-        split_x = float(np.nanmedian(sxy[:, 0])) if sxy is not None and len(sxy) else None
+                      f"Trajectories of the {len(trials)} trials in the virtual world (mm), "
+                      "coloured by the target finally chosen (grey: no final choice); crosses: "
+                      f"the {len(splits)} split points; stars: median target positions.")]
+    if s.has("density") and s.has("density_x_edges_mm"):
+        dens, xe, ye = s.density
+        bin_mm = float(np.diff(xe)[0]) if xe.size > 1 else float("nan")
         out.append(ctx.figure("density", F.density_figure(
-            np.asarray(arr[:]), x_edges_mm=at.get("x_edges_mm"), y_edges_mm=at.get("y_edges_mm"),
-            split_x_mm=split_x), "Density of trajectory samples, folded so that the chosen "
-            "target is on one side, with the median split position (dashed)."))
-    ang_key = _pick(splits.columns, "subtended_rad", "angle_rad", contains=("subtended",))
-    if ang_key is not None:
-        crit: dict[str, Any] = s.critical_angle if s.has("critical_angle") else {}
-        ck = _pick(crit, "critical_angle_rad", "critical_rad", contains=("critical",))
-        lo = _pick(crit, "ci_low_rad", contains=("low",))
-        hi = _pick(crit, "ci_high_rad", contains=("high",))
-        ci = (float(crit[lo]), float(crit[hi])) if lo and hi else None
+            dens, x_edges_mm=xe, y_edges_mm=ye), "Density of trajectory samples (fraction "
+            f"of samples per {bin_mm:g} mm bin), each trial rotated so that its targets lie ahead (+y) "
+            "and folded left onto right (x -> |x|)."))
+    if "subtended_mid_rad" in splits or "subtended_rad" in splits:
+        col = "subtended_mid_rad" if "subtended_mid_rad" in splits else "subtended_rad"
+        crit = s.critical_angle if s.record("behaviour").get("info", {}).get(
+            "critical_angle") else {}
+        est = crit.get("estimate_rad")
+        lo, hi = crit.get("ci_low_rad"), crit.get("ci_high_rad")
+        ci = (float(lo), float(hi)) if lo is not None and hi is not None else None
+        n_crit = crit.get("n", len(splits))
+        out.append(facts_block([
+            ("critical angle (°)", np.degrees(float(est)) if est is not None else "n/a"),
+            ("95% bootstrap interval (°)", f"{np.degrees(ci[0]):.1f} - {np.degrees(ci[1]):.1f}"
+             if ci else "n/a"), ("splits used", n_crit)]))
         out.append(ctx.figure("split_angle", F.split_angle_figure(
-            splits[ang_key].to_numpy(), critical_rad=float(crit[ck]) if ck else None, ci_rad=ci),
-            "Angle subtended at the animal by the two outermost targets at each split "
-            "(degrees), with the critical-angle estimate and its 95% interval."))
+            splits[col].to_numpy(), critical_rad=float(est) if est is not None else None,
+            ci_rad=ci), "Angle subtended at the animal by the two outermost remaining targets "
+            "at each split (degrees; midway between the samples either side of the split), "
+            "with the critical-angle estimate and its 95% bootstrap interval."))
+    if len(splits):
+        show = [c for c in ("trial", "level", "split_rig_s", "subtended_mid_rad", "dropped",
+                            "chosen", "n_remaining") if c in splits]
+        rows: list[dict[str, Any]] = [{str(k): v for k, v in r.items()}
+                                      for r in splits[show].to_dict("records")]
+        for r in rows:
+            if "subtended_mid_rad" in r:
+                r["subtended (°)"] = float(np.degrees(r.pop("subtended_mid_rad")))
+        out.append(table_block(rows, caption="splits: times on the rig clock (s), angle in "
+                                             "degrees"))
     return "\n".join(out)
+
+
+_CURVES = (("turn_r2", "continuous turn command", "cross-validated R²"),
+           ("bout_auc", "bout direction (left/right)", "ROC AUC"),
+           ("bout_angle_r2", "bout turn angle", "cross-validated R²"))
 
 
 def _decoding(ctx: _Ctx) -> str:
     s = ctx.session
-    dec = s.decoding
+    doc = s.decoding_summary
     out = []
-    parts = dec.groupby("decoder") if "decoder" in dec else [("", dec)]
-    name: Any
-    for name, d in parts:
-        attrs = dec.attrs.get(name, dec.attrs) if name else dec.attrs
-        score = _pick(d.columns, "mean", "score", "score_mean", "r2", "accuracy")
-        if score is None:
+    facts: list[tuple[str, Any]] = [
+        (k, doc[k]) for k in ("feature", "null_kind", "n_samples", "n_bouts", "n_left",
+                              "window_s", "weights_lag_s", "weights_alpha") if k in doc]
+    out.append(facts_block(facts))
+    for key, what, metric in _CURVES:
+        c = doc.get(key)
+        if not isinstance(c, dict) or "lags_s" not in c:
             continue
-        folds = [c for c in d.columns if c.startswith((f"{score}_fold", "folds_"))]
-        lo = _pick(d.columns, "null_low", "null_lo", "null_mean")
-        hi = _pick(d.columns, "null_high", "null_hi", "null_p95")
-        earliest = attrs.get("earliest_lag_s")
-        fig = F.decode_lag_figure(
-            d["lag_s"].to_numpy(), d[score].to_numpy(),
-            folds=d[folds].to_numpy().T if folds else None,
-            null_band=(d[lo].to_numpy(), d[hi].to_numpy()) if lo and hi else None,
-            earliest_lag_s=float(earliest) if earliest is not None else None,
-            metric=str(attrs.get("metric", score)))
-        title = f"Decoder {name}: " if name else ""
-        out.append(facts_block([(str(k), v) for k, v in attrs.items()
-                                if not isinstance(v, list | dict)]))
-        out.append(ctx.figure(f"decode_lag{name}", fig, f"{title}cross-validated score of the "
-                              "turn decoder against the lag between activity and behaviour "
-                              "(thin lines: folds; grey: null band from refits on shuffled "
-                              "targets, mean to 95th percentile or as stored; dashed: earliest lag above the null band)."))
-        if "confusion" in attrs:
-            classes = attrs.get("classes") or [str(i) for i in range(len(attrs["confusion"]))]
-            out.append(ctx.figure(f"confusion{name}", F.confusion_figure(
-                np.asarray(attrs["confusion"]), classes), "Confusion matrix of the turn "
-                "direction at the best lag, summed over test folds."))
+        lag = np.asarray(c["lags_s"], float)
+        mean = np.asarray(c["mean"], float)
+        folds = np.asarray(c["folds"], float) if c.get("folds") else None
+        band = None
+        if c.get("null_mean") is not None and c.get("null_p95") is not None:
+            band = (np.asarray(c["null_mean"], float), np.asarray(c["null_p95"], float))
+        earliest = c.get("earliest_lag_s")
+        fig = F.decode_lag_figure(lag, mean, folds=folds, null_band=band,
+                                  earliest_lag_s=float(earliest) if earliest is not None
+                                  else None, metric=metric)
+        best = c.get("best_lag_s")
+        peak = float(np.nanmax(mean)) if np.isfinite(mean).any() else float("nan")
+        out.append(ctx.figure(f"decode_{key}", fig, f"Decoding the {what}: {metric} against "
+                              "the lag of activity relative to behaviour (s; negative = activity "
+                              f"before the turn). Thick: mean over {len(folds) if folds is not None else 0} "
+                              "test folds; thin: each fold; grey band: null mean to 95th "
+                              f"percentile ({c.get('n_null', 0)} refits on shuffled targets). "
+                              f"Best lag {best if best is not None else 'n/a'} s, peak {peak:.3g}."
+                              ))
+    conf = doc.get("bout_confusion")
+    if isinstance(conf, dict) and conf.get("confusion"):
+        out.append(ctx.figure("confusion", F.confusion_figure(
+            np.asarray(conf["confusion"]), conf.get("classes", ["left", "right"])),
+            f"Confusion matrix of the bout-direction decoder at its best lag "
+            f"({conf.get('lag_s', 0):+.1f} s), {conf.get('n_bouts', '')} test bouts summed "
+            "over whole-trial folds (rows: true direction; columns: predicted)."))
     if s.has("decode_weights") and s.has("cells"):
         w = np.asarray(s.array("decode_weights").compute(), float)
         cells = s.cells
-        if w.ndim == 2 and w.shape[0] == len(cells):
-            w = w[:, int(np.argmax(np.abs(w).sum(axis=0)))]
         if w.shape == (len(cells),):
             out.append(ctx.figure("weights", F.cell_map_figure(
                 cells["x_um"].to_numpy(), cells["y_um"].to_numpy(), cells["z_um"].to_numpy(),
-                w, label="decoder weight", symmetric=True), "Decoder weight of each cell at "
-                "its position (top view and side view)."))
-    return "\n".join(out) or problem_block("decoding", "decode.json holds no score column")
+                w, label="decoder weight (turn units per ΔF/F)", symmetric=True),
+                f"Weight of each cell in the continuous turn decoder refitted on all samples at "
+                f"lag {doc.get('weights_lag_s', 'n/a')} s, at the cell's position (top: view "
+                "from above; bottom: side view; µm); colour scale symmetric about zero, positive "
+                "pushes the decoded turn to the left."))
+    return "\n".join(out)
 
 
 def _tuning(ctx: _Ctx) -> str:
@@ -299,23 +353,32 @@ def _tuning(ctx: _Ctx) -> str:
                               "and epoch, coloured by preferred egocentric bearing (cyclic "
                               "colour map; 0 = ahead, positive = left) and sized by "
                               "selectivity."))
-    curves_path = s.root / "session.zarr" / "tuning" / "curves"
-    if curves_path.exists() and s.has("cells"):
+    if s.has("tuning_curves"):
         import zarr
 
-        arr = zarr.open_array(str(curves_path), mode="r")
-        centres = np.asarray(arr.attrs.get("bin_centres_rad", np.linspace(
-            -np.pi, np.pi, arr.shape[-1], endpoint=False)))
-        order = tun.sort_values([c for c in ("q", sel) if c], ascending=[True, False][
-            : len([c for c in ("q", sel) if c])])
-        top = list(dict.fromkeys(order[cell].tolist()))[:8]
+        arr = zarr.open_array(str(s.where("tuning_curves")), mode="r")   # (target, epoch, bin, cell)
+        centres = np.asarray(dict(arr.attrs)["bin_centres_rad"], float)
+        attrs: dict[str, Any] = dict(arr.attrs)
+        t_names = [str(t) for t in attrs.get("targets", [])]
+        e_names = [str(e) for e in attrs.get("epochs", [])]
+        best = tun[tun["tuned"].astype(bool)].sort_values(["q", "unique_r2"],
+                                                          ascending=[True, False])
+        best = best.drop_duplicates(cell).head(8)
         ids = s.cells["id"].to_numpy()
-        rows = [int(np.flatnonzero(ids == c)[0]) for c in top if np.any(ids == c)]
-        curves = [np.asarray(arr[r]).reshape(-1, arr.shape[-1]) for r in rows]
-        out.append(ctx.figure("tuning_curves", F.tuning_curves_figure(
-            centres, curves, [f"cell {c}" for c in top[: len(rows)]]),
-            "Tuning curves (mean activity per egocentric-bearing bin) of the cells with the "
-            "lowest q values; one line per target and epoch."))
+        curves, names = [], []
+        for r in best.to_dict("records"):
+            col = np.flatnonzero(ids == r[cell])
+            if not col.size or r["target"] not in t_names:
+                continue
+            k = t_names.index(r["target"])
+            curves.append(np.asarray(arr[k, :, :, int(col[0])], float))   # (epoch, bin)
+            names.append(f"cell {r[cell]}: {r['target']}, tuned {r['epoch']}")
+        if curves:
+            out.append(ctx.figure("tuning_curves", F.tuning_curves_figure(
+                centres, curves, names, series=e_names),
+                "Tuning curves of the tuned cells with the lowest q values: mean ΔF/F per "
+                "egocentric-bearing bin of the named target (degrees; 0 = ahead, positive = "
+                "left), one line per epoch relative to the trial's first split."))
     return "\n".join(out)
 
 

@@ -19,6 +19,8 @@ acquisition order within the volume; the align stage turns slots into per-plane 
 
 from __future__ import annotations
 
+import contextlib
+import logging
 import re
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
@@ -187,6 +189,36 @@ def _check_sequence(indexed: list[tuple[int, str]], what: str) -> list[str]:
     return [f for _, f in indexed]
 
 
+class _TiffLogCapture(logging.Handler):
+    """Collects what tifffile logs while a file is read (it logs, not raises, on a bad IFD)."""
+
+    def __init__(self) -> None:
+        super().__init__(logging.WARNING)
+        self.messages: list[str] = []
+
+    def emit(self, record: logging.LogRecord) -> None:
+        self.messages.append(record.getMessage())
+
+
+@contextlib.contextmanager
+def _tifffile_log() -> Iterator[_TiffLogCapture]:
+    """Capture tifffile's warnings (instead of letting them reach stderr) for one file.
+
+    tifffile stops walking the page chain at an invalid IFD offset (a truncated file) and only
+    logs it; the caller turns a captured message into an :class:`InputError` naming the page.
+    """
+    logger = tifffile.logger()
+    handler = _TiffLogCapture()
+    old_propagate = logger.propagate
+    logger.addHandler(handler)
+    logger.propagate = False
+    try:
+        yield handler
+    finally:
+        logger.removeHandler(handler)
+        logger.propagate = old_propagate
+
+
 def _header(path: str) -> tuple[int, tuple[int, int], str, bool]:
     """Page count, page shape, dtype and BigTIFF flag of one file, checking every page."""
     p = Path(path)
@@ -201,7 +233,7 @@ def _header(path: str) -> tuple[int, tuple[int, int], str, bool]:
     bigtiff = False
     n = 0
     try:
-        with tifffile.TiffFile(path) as tif:
+        with _tifffile_log() as logged, tifffile.TiffFile(path) as tif:
             bigtiff = bool(tif.is_bigtiff)
             for i, page in enumerate(tif.pages):
                 pshape, pdtype = tuple(page.shape), str(page.dtype)  # type: ignore[union-attr]
@@ -217,6 +249,11 @@ def _header(path: str) -> tuple[int, tuple[int, int], str, bool]:
                     raise InputError(f"{path}: page {i} is truncated (its data ends at byte "
                                      f"{end}, the file has {size} bytes)")
                 n = i + 1
+            if logged.messages:
+                at = f"after page {n - 1}" if n else "at page 0"
+                raise InputError(f"{path}: the file is truncated or damaged {at} ({n} readable "
+                                 f"page(s), file size {size} bytes; tifffile: "
+                                 f"{logged.messages[0]})")
     except InputError:
         raise
     except Exception as exc:  # tifffile raises several kinds on a damaged file
