@@ -149,6 +149,72 @@ class Compute:
         finally:
             bar.close()
 
+    def reduce(self, fn: Callable[..., Any], items: Iterable[Any], *args: Any,
+               merge: Callable[[Any, Any], Any], desc: str = "") -> Any:
+        """``merge`` the results of ``fn(item, *args)`` in input order, as tasks finish.
+
+        Results that arrive early wait only until their predecessors are merged, so memory
+        holds about one result per running task (not one per item), and the order of the
+        additions, hence the floating-point result, does not depend on the scheduler or the
+        worker count. ``merge(total, result)`` returns the new total.
+        """
+        items = list(items)
+        if not items:
+            raise ValueError("Compute.reduce needs at least one item")
+        bar = tqdm(total=len(items), desc=desc, disable=self.quiet, unit="task", leave=False)
+        total: Any = None
+        pending: dict[int, Any] = {}
+        nxt = 0
+
+        def take(i: int, result: Any) -> None:
+            nonlocal total, nxt
+            pending[i] = result
+            while nxt in pending:
+                r = pending.pop(nxt)
+                total = r if nxt == 0 else merge(total, r)
+                nxt += 1
+            bar.update(1)
+
+        try:
+            if self.client is not None:
+                from distributed import as_completed
+
+                futures = self.client.map(fn, items, *[[a] * len(items) for a in args],
+                                          pure=False)
+                index = {f.key: i for i, f in enumerate(futures)}
+                for fut, result in as_completed(futures, with_results=True):
+                    take(index[fut.key], result)
+                    fut.release()
+            elif self.n_workers == 1:
+                for i, item in enumerate(items):
+                    take(i, fn(item, *args))
+            else:
+                pool = self._executor()
+                # a bounded window of tasks in flight keeps memory at O(workers) results
+                futs: dict[cf.Future[Any], int] = {}
+                queue = iter(enumerate(items))
+
+                def submit() -> None:
+                    job = next(queue, None)
+                    if job is not None:
+                        futs[pool.submit(fn, job[1], *args)] = job[0]
+
+                for _ in range(2 * self.n_workers):
+                    submit()
+                try:
+                    while futs:
+                        done, _ = cf.wait(futs, return_when=cf.FIRST_COMPLETED)
+                        for f in done:
+                            take(futs.pop(f), f.result())
+                            submit()
+                except BaseException:
+                    for f in futs:
+                        f.cancel()
+                    raise
+            return total
+        finally:
+            bar.close()
+
     def compute(self, *collections: Any, desc: str = "") -> Sequence[Any]:
         """Compute dask collections on this scheduler with a progress bar."""
         import dask

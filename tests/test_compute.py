@@ -14,13 +14,24 @@ def _block_sum(seed: int) -> float:
     return float(rng.normal(size=(64, 64)).sum())
 
 
+def _block_list(seed: int) -> list[float]:
+    return [_block_sum(seed)]
+
+
+def _concat(total: list[float], part: list[float]) -> list[float]:
+    return total + part
+
+
 def test_threads_processes_and_local_cluster_agree() -> None:
     expected = [_block_sum(i) for i in range(6)]
     for scheduler in ("threads", "processes", "local-cluster"):
         settings = ComputeSettings(scheduler=scheduler, workers=2)
         with Compute(settings, quiet=True) as compute:
             got = compute.map(_block_sum, range(6), desc=scheduler)
+            # ordered streaming reduction: same additions in the same order as a plain loop
+            folded = compute.reduce(_block_list, range(9), merge=_concat, desc=scheduler)
         assert got == expected, scheduler
+        assert folded == [_block_sum(i) for i in range(9)], scheduler
 
 
 def test_dask_collections_under_threads_and_cluster() -> None:

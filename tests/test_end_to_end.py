@@ -10,7 +10,6 @@ they are reached and cannot be forgotten.
 from __future__ import annotations
 
 import json
-import re
 from html.parser import HTMLParser
 from pathlib import Path
 
@@ -26,21 +25,14 @@ from pipeline.session import Session
 pytestmark = pytest.mark.slow
 
 #: reduced-cost analysis settings for the test run (replacing the demo config's values)
-REDUCED = {"n_null": 20, "n_null_bouts": 2, "n_permutations": 300}
+REDUCED = {"decode": {"n_null": 20, "n_null_bouts": 2}, "tuning": {"n_permutations": 300}}
 TARGETS = ("t0", "t1", "t2")
 
 
 @pytest.fixture(scope="module")
 def run(demo_small_data: Path, tmp_path_factory: pytest.TempPathFactory):
     folder = tmp_path_factory.mktemp("e2e")
-    cfg = demo_config(demo_small_data, folder / "out", folder)
-    text = cfg.read_text()
-    for key, value in REDUCED.items():
-        text, n = re.subn(rf"^{key} = .*$", f"{key} = {value}", text, flags=re.M)
-        if n == 0:      # not in the demo config: add it to its section
-            section = "tuning" if key == "n_permutations" else "decode"
-            text = text.replace(f"[{section}]\n", f"[{section}]\n{key} = {value}\n", 1)
-    cfg.write_text(text)
+    cfg = demo_config(demo_small_data, folder / "out", folder, overrides=REDUCED)
     assert main(["--quiet", "run", str(cfg)]) == 0
     truth = demo_small_data / "truth"
     return {"cfg": cfg, "out": folder / "out", "truth": truth,
@@ -269,3 +261,15 @@ def test_nwb_export_passes_inspector(run):
     beh = run["session"].behaviour
     assert n_trials == beh.loc[beh["trial"] >= 0, "trial"].nunique()  # rows of -1: between
     assert len(bouts) == len(run["session"].bouts)
+
+
+def test_readme_example_runs_on_the_demo(run, monkeypatch) -> None:
+    import doctest
+
+    readme = (Path(__file__).resolve().parents[1] / "README.md").read_text()
+    block = readme.split("```pycon\n", 1)[1].split("```", 1)[0]
+    block = block.replace('"runs/demo"', repr(str(run["out"])))
+    test = doctest.DocTestParser().get_doctest(block, {}, "README", "README.md", 0)
+    runner = doctest.DocTestRunner(optionflags=doctest.ELLIPSIS)
+    runner.run(test)
+    assert runner.failures == 0 and runner.tries >= 8

@@ -37,10 +37,11 @@ from pipeline.volumes.summary import SummaryAccumulator
 
 __all__ = ["run_motion", "estimation_options", "volume_groups"]
 
-# Volumes are cut into at most this many tasks whatever the worker count: the partition (and so
-# the order in which float64 block sums are added) depends only on the session length and
-# motion.block_volumes, which keeps the reference and the summary images bit-identical on 1 or
-# 2 threads and on a cluster, and bounds the per-task accumulators held for the merge.
+# The partition of volumes into tasks (and so the order in which float64 block sums are added)
+# depends only on the session length and motion.block_volumes, never on the worker count, which
+# keeps the reference and the summary images bit-identical on 1 or 2 threads and on a cluster.
+# The registration pass merges accumulators in order as tasks finish (Compute.reduce), so memory
+# holds about one accumulator per running task; the reference passes return one volume each.
 _N_TASKS = 16
 
 
@@ -95,7 +96,8 @@ def _block_registered_sum(group: tuple[int, int], volumes_path: str, reference_p
 
 def _register_group(group: tuple[int, int], volumes_path: str, reference_path: str,
                     options: dict[str, Any], upsample: int, neighbourhood: int,
-                    enabled: bool) -> tuple[np.ndarray, np.ndarray, SummaryAccumulator]:
+                    enabled: bool
+                    ) -> tuple[list[np.ndarray], list[np.ndarray], SummaryAccumulator]:
     """Task: shifts and quality of volumes ``start..stop-1`` and their summary accumulator."""
     arr = zarr.open_array(volumes_path, mode="r")
     reference = _get(zarr.open_array(reference_path, mode="r"))
@@ -112,7 +114,12 @@ def _register_group(group: tuple[int, int], volumes_path: str, reference_path: s
             acc.update(shift_volume(vol, shifts[i]))
         else:
             acc.update(vol)
-    return shifts, quality, acc
+    return [shifts], [quality], acc
+
+
+def _merge_groups(total: tuple, part: tuple) -> tuple:
+    """Merge one task's result into the running total (volume order is kept by the caller)."""
+    return total[0] + part[0], total[1] + part[1], total[2].merge(part[2])
 
 
 @stage("motion", requires=("ingest",), sections=("imaging", "motion"))
@@ -146,14 +153,12 @@ def run_motion(settings: Settings, store: StageStore, compute: Compute) -> None:
         reference = (np.sum(sums, axis=0) / n_ref).astype(np.float32)
         store.write_array("motion/reference", reference, attrs={"unit": "camera counts"},
                           dimension_names=("z", "y", "x"))
-    groups = volume_groups(0, T, block=m.block_volumes, n_tasks=n_tasks)
-    results = compute.map(_register_group, groups, vpath, ref_path, opts, m.upsample,
-                          m.neighbourhood, m.enabled, desc="motion: register")
-    shifts = np.concatenate([r[0] for r in results])
-    quality = np.concatenate([r[1] for r in results])
-    acc = results[0][2]
-    for r in results[1:]:
-        acc.merge(r[2])
+    groups = volume_groups(0, T, block=m.block_volumes, n_tasks=T)
+    shift_blocks, quality_blocks, acc = compute.reduce(
+        _register_group, groups, vpath, ref_path, opts, m.upsample, m.neighbourhood, m.enabled,
+        merge=_merge_groups, desc="motion: register")
+    shifts = np.concatenate(shift_blocks)
+    quality = np.concatenate(quality_blocks)
     mean, local_corr = acc.finalize()
     flags = flag_motion(shifts, quality, voxel_size_um=tuple(vox), max_shift_um=m.max_shift_um,
                         z_drift_fraction=m.z_drift_fraction, quality_mad=m.quality_mad)
