@@ -65,7 +65,22 @@ def _train_outside(n, test, gap):
     return np.flatnonzero(np.cumsum(blocked[:n]) == 0)
 
 
-class BlockedKFold(BaseCrossValidator):
+class _GappedSplitter(BaseCrossValidator):
+    """Shared parameters of the splitters below: fold count and the gap around test samples."""
+
+    def __init__(self, n_splits=5, *, gap=0):
+        self.n_splits = n_splits
+        self.gap = gap
+
+    def get_n_splits(self, X=None, y=None, groups=None):
+        return int(self.n_splits)
+
+    def _iter_test_indices(self, X=None, y=None, groups=None):  # pragma: no cover - unused
+        for _, test in self.split(X, y, groups):
+            yield test
+
+
+class BlockedKFold(_GappedSplitter):
     """K contiguous test blocks, with ``gap`` samples removed from training on each side.
 
     Parameters
@@ -81,12 +96,6 @@ class BlockedKFold(BaseCrossValidator):
     Roberts DR et al. (2017). Ecography 40:913-929. doi:10.1111/ecog.02881
     """
 
-    def __init__(self, n_splits=5, *, gap=0):
-        self.n_splits = n_splits
-        self.gap = gap
-
-    def get_n_splits(self, X=None, y=None, groups=None):
-        return int(self.n_splits)
 
     def split(self, X, y=None, groups=None):
         _check(self.n_splits, self.gap)
@@ -104,12 +113,9 @@ class BlockedKFold(BaseCrossValidator):
                                  f"sample for the test block [{a}, {b}) of {n} samples")
             yield train, test
 
-    def _iter_test_indices(self, X=None, y=None, groups=None):  # pragma: no cover - unused
-        for _, test in self.split(X, y, groups):
-            yield test
 
 
-class TrialKFold(BaseCrossValidator):
+class TrialKFold(_GappedSplitter):
     """Whole trials per fold (consecutive trials grouped), with a gap around test samples.
 
     Trials are taken in order of first appearance and cut into ``n_splits`` runs of
@@ -127,12 +133,6 @@ class TrialKFold(BaseCrossValidator):
     Roberts DR et al. (2017). Ecography 40:913-929. doi:10.1111/ecog.02881
     """
 
-    def __init__(self, n_splits=5, *, gap=0):
-        self.n_splits = n_splits
-        self.gap = gap
-
-    def get_n_splits(self, X=None, y=None, groups=None):
-        return int(self.n_splits)
 
     def split(self, X, y=None, groups=None):
         _check(self.n_splits, self.gap)
@@ -169,6 +169,3 @@ class TrialKFold(BaseCrossValidator):
                                  f"sample for fold {f}")
             yield train, test
 
-    def _iter_test_indices(self, X=None, y=None, groups=None):  # pragma: no cover - unused
-        for _, test in self.split(X, y, groups):
-            yield test
