@@ -264,6 +264,9 @@ def _save_weights(path, w):
     np.savez(path, shape=np.asarray(w.shape), coords=w.coords, ring_count=w.ring_count)
     sp.save_npz(f"{path}.cell.npz", w.cell)
     sp.save_npz(f"{path}.neuropil.npz", w.neuropil)
+    # written last: a run killed while saving leaves no marker and rebuilds the weights
+    with open(f"{path}.complete", "w") as fh:
+        fh.write("ok\n")
 
 
 def _load_weights(path):
@@ -349,7 +352,7 @@ def run_traces(settings, store, compute):
     work = store.staging_path("extract")
     work.mkdir(parents=True, exist_ok=True)
     weights_path = str(work / "weights")
-    if not (work / "weights.npz").exists():
+    if not (work / "weights.complete").exists():
         w = build_weights(labels, voxel_size_um=vs, centroids_vox=cen,
                           ring_inner_um=ts.ring_inner_um, ring_outer_um=ts.ring_outer_um,
                           cell_margin_um=ts.ring_margin_um, max_ring_voxels=ts.ring_max_voxels)
