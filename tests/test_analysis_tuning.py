@@ -192,3 +192,26 @@ def test_unique_variance_errors(rng):
         unique_variance_test(act, np.zeros(50), perm_index=np.zeros((1, 50), int))
     with pytest.raises(InputError, match=r"perm_index: expected shape \(n_permutations, 50\)"):
         unique_variance_test(act, np.zeros((50, 2)), perm_index=np.zeros((1, 49), int))
+
+
+def test_trial_intercepts_keep_between_trial_drift_from_looking_like_tuning(rng):
+    # Activity with a per-trial offset (slow drift, bleaching steps) and bearings whose
+    # per-trial mean differs between trials: under a trial shuffle this between-trial
+    # covariation looks like tuning; with one never-permuted intercept per trial it must not.
+    bearings, trials, splits = _behaviour(rng)
+    m = epoch_masks(trials, splits, pre=60, post=60)["pre"]
+    b, t = bearings[m], trials[m]
+    ids = np.unique(t)
+    trial_mean_cos = np.array([np.cos(b[t == i, 0]).mean() for i in ids])
+    level = trial_mean_cos[np.searchsorted(ids, t)]               # tracks the trial's bearing
+    act = rng.normal(size=(b.shape[0], 1000)) + 3.0 * level[:, None]
+    perms = trial_shuffle_indices(t, 199, seed=5)
+    intercepts = (t[:, None] == ids[None, :]).astype(float)
+    fixed = unique_variance_test(act, b, perm_index=perms, fixed_nuisance=intercepts)
+    _, tuned = tuned_flags(fixed.p, q=0.05)
+    # no within-trial relation was planted: at most 5% flagged (BH level; common practice)
+    assert tuned.mean() <= 0.05
+    assert np.mean(fixed.p <= 0.05) < 0.075
+    plain = unique_variance_test(act, b, perm_index=perms)
+    # without the intercepts the same data is flagged far above the nominal level
+    assert np.mean(plain.p <= 0.05) > 0.2

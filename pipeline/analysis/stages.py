@@ -234,8 +234,13 @@ def _tuning_task(rows, activity_path, bearing, nuisance, trial, masks, options):
                                                min_shift=min(options["min_shift"],
                                                              idx.size // 2),
                                                seed=options["seed"] + e)
+            fixed = None
+            if options["trial_intercepts"] and trial is not None:
+                # one indicator per trial of the activity rows (never permuted)
+                fixed = (trial[idx][:, None] == np.unique(trial[idx])[None, :]).astype(float)
             res = unique_variance_test(act[idx], bearing[np.ix_(idx, model)],
                                        nuisance=None if nuisance is None else nuisance[idx],
+                                       fixed_nuisance=fixed,
                                        perm_index=perms, n_harmonics=options["n_harmonics"])
             for k in keep:
                 j = model.index(k)
@@ -275,6 +280,7 @@ def run_tuning(settings, store, compute):
                         post=round(ts.post_window_s * rate))
     options = {"null": ts.null, "n_perm": ts.n_permutations, "seed": ts.seed,
                "min_shift": max(1, round(ts.min_shift_s * rate)), "n_harmonics": ts.n_harmonics,
+               "trial_intercepts": ts.trial_intercepts,
                "n_bins": ts.n_bins, "min_count": max(1, round(ts.min_occupancy_s * rate))}
     tasks = []
     planes = cells["plane"].to_numpy()

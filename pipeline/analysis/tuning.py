@@ -275,7 +275,8 @@ class UniqueVariance:
     n_permutations: int
 
 
-def unique_variance_test(activity, bearings_rad, *, perm_index, nuisance=None, n_harmonics=1,
+def unique_variance_test(activity, bearings_rad, *, perm_index, nuisance=None,
+                         fixed_nuisance=None, n_harmonics=1,
                          block_cells=4096, dtype=np.float32):
     """Unique variance of each target's bearing and its permutation p-value, for all cells.
 
@@ -290,6 +291,10 @@ def unique_variance_test(activity, bearings_rad, *, perm_index, nuisance=None, n
         ``circular_shift_indices``).
     nuisance : ndarray of shape (n_samples, n_nuisance), optional
         Regressors every model keeps (turn command, vigor...); permuted with the bearings.
+    fixed_nuisance : ndarray of shape (n_samples, n_fixed), optional
+        Regressors tied to the activity rows and never permuted, e.g. one indicator per trial:
+        with them only within-trial covariation of activity and bearing counts, so slow
+        between-trial drifts of activity cannot masquerade as tuning under the trial shuffle.
     n_harmonics : int, default=1
         Harmonics of each bearing; 2 captures sharper, von Mises-like tuning.
     block_cells : int, default=4096
@@ -325,17 +330,28 @@ def unique_variance_test(activity, bearings_rad, *, perm_index, nuisance=None, n
     orders = np.vstack([np.arange(n)[None, :], perm_index])
     stack = np.empty((n, n_perm + 1, n_t, m), dtype=dtype)
     step = max(1, int(2**24 // (n * n_t * m * 8)))            # ~16 MB of float64 bases per batch
+    fixed = (np.zeros((n, 0)) if fixed_nuisance is None
+             else np.asarray(fixed_nuisance, dtype=np.float64).reshape(n, -1))
+
+    def nuisance_for(order):
+        moved = np.zeros((order.shape[0], n, 0)) if nuis is None else nuis[order]
+        both = np.concatenate([moved, np.broadcast_to(fixed, (order.shape[0], *fixed.shape))],
+                              axis=2)
+        return both if both.shape[2] else None
+
     for a in range(0, n_perm + 1, step):
         order = orders[a: a + step]
-        bases = _unique_bases(cols[order], None if nuis is None else nuis[order])
+        bases = _unique_bases(cols[order], nuisance_for(order))
         stack[:, a: a + order.shape[0]] = bases.transpose(1, 0, 2, 3)
-    base0 = _unique_bases(cols[None], None if nuis is None else nuis[None])[0].reshape(n, -1)
+    base0 = _unique_bases(cols[None], nuisance_for(orders[:1]))[0].reshape(n, -1)
     stack2 = stack.reshape(n, -1)
-    full_x = np.concatenate([cols.reshape(n, -1)] + ([] if nuis is None else [nuis]), axis=1)
+    full_x = np.concatenate([cols.reshape(n, -1)] + ([] if nuis is None else [nuis]) + [fixed],
+                            axis=1)
     full_x = full_x - full_x.mean(axis=0)
     q_full = _orth(full_x)
     pinv = np.linalg.pinv(full_x)
     n_cells = y_all.shape[1]
+    q_fixed = _orth(fixed - fixed.mean(axis=0)) if fixed.shape[1] else None
     uniq = np.empty((n_t, n_cells))
     pval = np.empty((n_t, n_cells))
     full_r2 = np.empty(n_cells)
@@ -344,6 +360,8 @@ def unique_variance_test(activity, bearings_rad, *, perm_index, nuisance=None, n
         sl = slice(a, min(a + int(block_cells), n_cells))
         y = np.asarray(y_all[:, sl], dtype=np.float64)
         y = y - y.mean(axis=0)
+        if q_fixed is not None:             # R^2 relative to what the fixed terms leave
+            y = y - q_fixed @ (q_fixed.T @ y)
         sst = np.sum(y * y, axis=0)
         proj = stack2.T @ y.astype(dtype, copy=False)           # the GEMM
         proj *= proj
