@@ -277,8 +277,9 @@ class TuningSettings:
     null: Literal["trial", "circular"] = _f("trial", doc="trial shuffle or circular shift")
     min_shift_s: float = _f(20.0, doc="minimum circular shift", unit="s", ge=0.0)
     fdr_q: float = _f(0.05, doc="Benjamini-Hochberg level", gt=0.0, lt=1.0)
-    trial_intercepts: bool = _f(True, doc="one intercept per trial, never permuted: only "
-                                "within-trial covariation counts as tuning")
+    trial_intercepts: bool = _f(False, doc="one intercept per trial, never permuted: only "
+                                "within-trial covariation counts as tuning (robust to "
+                                "between-trial drift, but loses tuning expressed between trials)")
     block_cells: int = _f(4096, doc="cells per task", ge=1)
     n_harmonics: int = _f(1, doc="harmonics of each bearing in the regression (2 = sharper "
                           "tuning)", ge=1, le=4)

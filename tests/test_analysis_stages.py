@@ -114,9 +114,10 @@ def test_tuning_stage_matches_kernel(rng, tmp_path):
     rows = np.flatnonzero(np.arange(40) % N_PLANES == 0)
     nuis = turn[m][:, [0]]
     intercepts = (trial[m][:, None] == np.unique(trial[m])[None, :]).astype(float)
+    INTERCEPTS = settings.tuning.trial_intercepts  # noqa: N806
     eager = unique_variance_test(act[rows].T[m], bearing[m, 0],
                                  perm_index=trial_shuffle_indices(trial[m], 499, seed=0),
-                                 nuisance=nuis, fixed_nuisance=intercepts)
+                                 nuisance=nuis, fixed_nuisance=intercepts if INTERCEPTS else None)
     got = table.query("epoch == 'pre' and target == 't0'").set_index("cell")
     np.testing.assert_allclose(got.loc[rows + 1, "p"], eager.p[0], atol=1e-12)
     tuned_cells = set(table.query("tuned and target == 't0'")["cell"])
