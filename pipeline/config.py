@@ -284,6 +284,9 @@ class TuningSettings:
     n_harmonics: int = _f(1, doc="harmonics of each bearing in the regression (2 = sharper "
                           "tuning)", ge=1, le=4)
     nuisance: bool = _f(True, doc="add turn and vigor as nuisance regressors")
+    nuisance_lead_s: float = _f(0.0, doc="motor nuisance regressors also at leads up to this "
+                                "(absorbs premotor activity; costs power on short sessions)",
+                                unit="s", ge=0.0)
     seed: int = _f(0, doc="seed of the null permutations", ge=0)
 
 

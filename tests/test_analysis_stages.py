@@ -10,7 +10,7 @@ import pandas as pd
 import pytest
 
 from pipeline.analysis.decode import decode_continuous, lag_samples
-from pipeline.analysis.stages import ALIGN, run_decode, run_tuning
+from pipeline.analysis.stages import ALIGN, motor_nuisance, run_decode, run_tuning
 from pipeline.analysis.stats import trial_shuffle_indices
 from pipeline.analysis.tuning import epoch_masks, unique_variance_test
 from pipeline.compute import Compute
@@ -112,7 +112,9 @@ def test_tuning_stage_matches_kernel(rng, tmp_path):
     masks = epoch_masks(trial, np.arange(N_TRIALS) * TRIAL_LEN + 30, pre=30, post=30)
     m = masks["pre"]
     rows = np.flatnonzero(np.arange(40) % N_PLANES == 0)
-    nuis = turn[m][:, [0]]
+    parts = motor_nuisance([turn], rate_hz=RATE_HZ, decay_s=settings.imaging.decay_s,
+                           lead_s=settings.tuning.nuisance_lead_s)
+    nuis = np.stack([p[:, 0] for p in parts], axis=1)[m]
     intercepts = (trial[m][:, None] == np.unique(trial[m])[None, :]).astype(float)
     INTERCEPTS = settings.tuning.trial_intercepts  # noqa: N806
     eager = unique_variance_test(act[rows].T[m], bearing[m, 0],
@@ -143,3 +145,17 @@ def test_tuning_stage_needs_trials(rng, tmp_path):
     with pytest.raises(StoreError, match="align/trial is missing"), \
             Compute(ComputeSettings(workers=1), quiet=True) as compute:
         run_tuning(settings, sub, compute)
+
+
+def test_motor_nuisance_leads_and_indicator_decay() -> None:
+    turn = np.zeros((40, 2))
+    turn[20, 0] = 1.0                       # one leftward turn command, plane 0
+    turn[30, 1] = -2.0                      # one rightward turn, plane 1
+    parts = motor_nuisance([turn], rate_hz=2.0, decay_s=1.0, lead_s=1.0)
+    assert len(parts) == 2 * 3              # left/right parts x leads of 0, 1, 2 volumes
+    left0, left2 = parts[0][:, 0], parts[2][:, 0]
+    # exponential decay with tau = 2 volumes after the event (indicator kernel, common practice)
+    np.testing.assert_allclose(left0[20:23], np.exp(-np.arange(3) / 2.0))
+    assert left0[:20].max() == 0.0
+    assert np.argmax(left2) == 18           # the lead-2 copy peaks two volumes earlier
+    assert parts[3][:, 1].max() == 2.0 and parts[3][:, 0].max() == 0.0

@@ -215,6 +215,31 @@ def _target_sets(finite, min_samples):
     return sets
 
 
+def motor_nuisance(parts, *, rate_hz, decay_s, lead_s):
+    """Motor regressors as a calcium indicator would see them, at leads up to ``lead_s``.
+
+    Each (t, z) series (turn command, vigor) is split into its positive and negative parts
+    (leftward and rightward turns drive different cells), shifted earlier by 0 .. ``lead_s``
+    in whole volumes (activity that leads a movement), and convolved with the indicator's
+    exponential decay, so that premotor and vigor-related activity is absorbed by the nuisance
+    terms instead of passing as bearing tuning.
+    """
+    if not parts:
+        return parts
+    kernel = np.exp(-np.arange(0, 5 * decay_s * rate_hz + 1) / (decay_s * rate_hz))
+    out = []
+    for series in parts:
+        for signed in (np.clip(series, 0, None), np.clip(-series, 0, None)):
+            if not signed.any():
+                continue
+            conv = np.apply_along_axis(lambda c: np.convolve(c, kernel)[: c.size], 0, signed)
+            for lead in range(int(round(lead_s * rate_hz)) + 1):
+                shifted = np.zeros_like(conv)
+                shifted[: conv.shape[0] - lead] = conv[lead:]
+                out.append(shifted)
+    return out
+
+
 def _tuning_task(rows, activity_path, bearing, nuisance, trial, masks, options):
     """One block of cells of one plane: every epoch's test and curves (picklable)."""
     act = np.asarray(zarr.open_array(activity_path, mode="r").oindex[rows, :]).T
@@ -269,6 +294,8 @@ def run_tuning(settings, store, compute):
     n_vol, n_planes, n_targets = bearing.shape
     nuis_parts = [_opt_array(store, ALIGN[k]) for k in ("turn", "vigor")] if ts.nuisance else []
     nuis_parts = [a.reshape(n_vol, n_planes) for a in nuis_parts if a is not None]
+    nuis_parts = motor_nuisance(nuis_parts, rate_hz=rate, decay_s=im.decay_s,
+                                lead_s=ts.nuisance_lead_s)
     trial = _trial_per_volume(store)
     if trial is None:
         raise StoreError(f"{ALIGN['trial']} is missing: the tuning epochs need trial ids")
