@@ -154,7 +154,7 @@ def test_model_round_trip_json(rng):
     np.testing.assert_allclose(back.rig_to_scope(back.scope_to_rig(ts)), ts, atol=1e-9)
 
 
-@settings(max_examples=200, deadline=None)
+@settings(max_examples=500, deadline=None)
 @given(seed=st.integers(0, 2**32 - 1), drop_frac=st.floats(0.0, 0.08),
        n_spur=st.integers(0, 5), offset_s=st.floats(-100, 100),
        drift_ppm=st.floats(-100, 100))
@@ -177,7 +177,7 @@ def test_property_any_drop_pattern_below_limit_recovers_clock(seed, drop_frac, n
     assert set(model.dropped_volume_indices) >= set(np.flatnonzero(~keep).tolist())
 
 
-@settings(max_examples=200, deadline=None)
+@settings(max_examples=500, deadline=None)
 @given(pulses=st.lists(st.floats(-1e4, 1e4, allow_nan=False), min_size=0, max_size=60),
        n_events=st.integers(0, 40))
 def test_property_arbitrary_pulses_fit_or_raise_our_error(pulses, n_events):

@@ -206,7 +206,7 @@ def test_missing_file_and_unknown_mapping(tmp_path):
         read_log(tmp_path / "a.csv", LogSpec(columns={"speed": "x_mm"}))
 
 
-@settings(max_examples=200, deadline=None,
+@settings(max_examples=500, deadline=None,
           suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(data=st.data())
 def test_any_generated_log_reads_or_raises_our_error(tmp_path_factory, data):
