@@ -100,7 +100,10 @@ def registry() -> dict[str, Stage]:
         seen.add(n)
         order.append(n)
 
-    for n in sorted(_REGISTRY, key=lambda n: _REGISTRY[n].after_all):
+    # a fixed visiting order, so the run order never depends on which module was imported first
+    preferred = {n: i for i, n in enumerate(pipeline.stages_all.PIPELINE_ORDER)}
+    for n in sorted(_REGISTRY, key=lambda n: (_REGISTRY[n].after_all,
+                                              preferred.get(n, len(preferred)), n)):
         visit(n, ())
     return {n: _REGISTRY[n] for n in order}
 

@@ -8,6 +8,10 @@ from __future__ import annotations
 
 import importlib
 
+#: The order stages run in when their dependencies allow it (unlisted stages come after).
+PIPELINE_ORDER = ("ingest", "motion", "cells", "traces", "behaviour", "align", "decode",
+                  "tuning", "report")
+
 STAGE_MODULES = (
     "pipeline.volumes.stages",
     "pipeline.behaviour.stages",
@@ -17,8 +21,4 @@ STAGE_MODULES = (
 )
 
 for _name in STAGE_MODULES:
-    try:
-        importlib.import_module(_name)
-    except ModuleNotFoundError as _exc:  # a subpackage not written yet
-        if _exc.name != _name:
-            raise
+    importlib.import_module(_name)
