@@ -6,7 +6,7 @@ import json
 
 import numpy as np
 import pytest
-from hypothesis import given, settings
+from hypothesis import example, given, settings
 from hypothesis import strategies as st
 from scipy import stats
 
@@ -155,6 +155,9 @@ def test_model_round_trip_json(rng):
 
 
 @settings(max_examples=500, deadline=None)
+# found by Hypothesis: a spurious pulse a quarter period after a volume start was once taken
+# for a clock jump of one period
+@example(seed=973, drop_frac=0.0, n_spur=5, offset_s=0.0, drift_ppm=0.0)
 @given(seed=st.integers(0, 2**32 - 1), drop_frac=st.floats(0.0, 0.08),
        n_spur=st.integers(0, 5), offset_s=st.floats(-100, 100),
        drift_ppm=st.floats(-100, 100))

@@ -258,6 +258,9 @@ def _walk(tp: NDArray[np.float64], ts: NDArray[np.float64], ratio: float, tol: f
         elif (e == le and abs(r) <= tol) or le + 1 >= ts.size or i + confirm >= n:
             continue                                    # a near-duplicate: spurious
         else:
+            e1, r1 = _nearest_one(ts, ts[le] + (tp[i + 1] - lr) / ratio)
+            if e1 > le and abs(r1) <= tol:
+                continue                                # the old train goes on: spurious
             ok = True
             pe = le + 1
             for j in range(1, confirm + 1):
