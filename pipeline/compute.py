@@ -54,6 +54,16 @@ def slurm_cluster(settings: ComputeSettings) -> Any:
     return SLURMCluster(**kwargs)
 
 
+def _as_list(item: Any, fn: Callable[..., Any], args: tuple, kwargs: dict) -> list[Any]:
+    """Task wrapper of :meth:`Compute.map`: one result as a one-item list (picklable)."""
+    return [fn(item, *args, **kwargs)]
+
+
+def _extend(total: list[Any], part: list[Any]) -> list[Any]:
+    total.extend(part)
+    return total
+
+
 class Compute:
     """The scheduler for one run.
 
@@ -120,34 +130,7 @@ class Compute:
         items = list(items)
         if not items:
             return []
-        bar = tqdm(total=len(items), desc=desc, disable=self.quiet, unit="task", leave=False)
-        try:
-            if self.client is not None:
-                from distributed import as_completed
-
-                futures = self.client.map(fn, items, *[[a] * len(items) for a in args],
-                                          pure=False, **kwargs)
-                for _ in as_completed(futures):
-                    bar.update(1)
-                return self.client.gather(futures)
-            if self.n_workers == 1:
-                out = []
-                for item in items:
-                    out.append(fn(item, *args, **kwargs))
-                    bar.update(1)
-                return out
-            pool = self._executor()
-            futs = [pool.submit(fn, item, *args, **kwargs) for item in items]
-            try:
-                for _ in cf.as_completed(futs):
-                    bar.update(1)
-            except BaseException:
-                for f in futs:
-                    f.cancel()
-                raise
-            return [f.result() for f in futs]
-        finally:
-            bar.close()
+        return self.reduce(_as_list, items, fn, args, kwargs, merge=_extend, desc=desc)
 
     def reduce(self, fn: Callable[..., Any], items: Iterable[Any], *args: Any,
                merge: Callable[[Any, Any], Any], desc: str = "") -> Any:

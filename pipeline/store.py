@@ -22,6 +22,7 @@ import contextlib
 import datetime as _dt
 import hashlib
 import json
+import logging
 import os
 import shutil
 import socket
@@ -44,6 +45,8 @@ __all__ = [
     "ome_multiscales",
     "atomic_write_text",
 ]
+
+log = logging.getLogger("forkmap")
 
 MANIFEST = "manifest.json"
 LOCK = ".forkmap.lock"
@@ -292,9 +295,7 @@ class StageStore(Store):
 
     def warn(self, message: str) -> None:
         """Record a warning for the report (and log it)."""
-        import logging
-
-        logging.getLogger("forkmap").warning("%s: %s", self.stage, message)
+        log.warning("%s: %s", self.stage, message)
         self._warnings.append(message)
 
     def set_info(self, info: Mapping[str, Any]) -> None:

@@ -146,6 +146,8 @@ class BoutDecode:
     n_bouts: int
     n_left: int
     window_s: float
+    confusion: np.ndarray
+    """(2, 2) test-fold counts at the best AUC lag: rows true, columns predicted (left, right)."""
 
     def to_dict(self) -> dict[str, Any]:
         """One entry per score (each with its own ``lags_s``) plus the scalars."""
@@ -154,6 +156,9 @@ class BoutDecode:
         if self.angle_r2 is not None:
             out["bout_angle_r2"] = self.angle_r2.to_dict()
         out.update({"n_bouts": self.n_bouts, "n_left": self.n_left, "window_s": self.window_s})
+        out["bout_confusion"] = {"lag_s": self.auc.best_lag_s, "classes": ["left", "right"],
+                                 "confusion": self.confusion.tolist(),
+                                 "n_bouts": int(self.confusion.sum())}
         return out
 
 
@@ -413,7 +418,7 @@ def decode_bouts(X, onsets, left, *, lags, rate_hz, window, angle=None, n_splits
         gen = np.random.default_rng(seed)
         perms = np.array([gen.permutation(yl.size) for _ in range(n_null)])
 
-    def scores(labels, lag_i):
+    def scores(labels, lag_i, confusion=None):
         auc, bacc = [], []
         for tr, te in folds:
             if np.unique(labels[tr]).size < 2 or np.unique(labels[te]).size < 2:
@@ -423,8 +428,11 @@ def decode_bouts(X, onsets, left, *, lags, rate_hz, window, angle=None, n_splits
             model = clone(clf).fit(F[lag_i, tr], labels[tr])
             s = (model.decision_function(F[lag_i, te]) if hasattr(model, "decision_function")
                  else model.predict_proba(F[lag_i, te])[:, 1])
+            pred = model.predict(F[lag_i, te])
             auc.append(roc_auc_score(labels[te], s))
-            bacc.append(balanced_accuracy_score(labels[te], model.predict(F[lag_i, te])))
+            bacc.append(balanced_accuracy_score(labels[te], pred))
+            if confusion is not None:      # rows true, columns predicted; left first
+                np.add.at(confusion, (1 - labels[te].astype(int), 1 - pred.astype(int)), 1)
         return np.array(auc), np.array(bacc)
 
     n_lags = len(lags)
@@ -432,8 +440,9 @@ def decode_bouts(X, onsets, left, *, lags, rate_hz, window, angle=None, n_splits
     bacc = np.empty_like(auc)
     null_auc = np.empty((perms.shape[0], n_lags))
     null_bacc = np.empty_like(null_auc)
+    confusion = np.zeros((n_lags, 2, 2), dtype=np.int64)
     for j in range(n_lags):
-        auc[:, j], bacc[:, j] = scores(yl, j)
+        auc[:, j], bacc[:, j] = scores(yl, j, confusion[j])
         for i, p in enumerate(perms):
             a, b = scores(yl[p], j)
             null_auc[i, j], null_bacc[i, j] = np.nanmean(a), np.nanmean(b)
@@ -448,6 +457,9 @@ def decode_bouts(X, onsets, left, *, lags, rate_hz, window, angle=None, n_splits
                 pred = clone(reg).fit(F[j, tr], ya[tr]).predict(F[j, te])
                 r2[f, j] = r2_columns(ya[te, None], pred[:, None])[0]
         angle_curve = _curve("r2", lags_s, r2)
-    return BoutDecode(_curve("roc_auc", lags_s, auc, null_auc if n_null else None),
+    auc_curve = _curve("roc_auc", lags_s, auc, null_auc if n_null else None)
+    best = int(np.argmin(np.abs(lags_s - auc_curve.best_lag_s)))
+    return BoutDecode(auc_curve,
                       _curve("balanced_accuracy", lags_s, bacc, null_bacc if n_null else None),
-                      angle_curve, int(keep.size), int(yl.sum()), window / float(rate_hz))
+                      angle_curve, int(keep.size), int(yl.sum()), window / float(rate_hz),
+                      confusion[best])

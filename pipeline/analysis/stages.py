@@ -25,11 +25,9 @@ import zarr
 
 from pipeline.analysis.cv import gap_samples
 from pipeline.analysis.decode import (
-    bout_windows,
     decode_bouts,
     decode_continuous,
     lag_samples,
-    make_splitter,
 )
 from pipeline.analysis.stats import circular_shift_indices, trial_shuffle_indices
 from pipeline.analysis.tuning import (
@@ -147,10 +145,6 @@ def run_decode(settings, store, compute):
                                 n_splits=ds.n_folds, gap=1, n_null=ds.n_null_bouts,
                                 trial_of_bout=trial_b, seed=ds.seed)
             doc.update(bres.to_dict())
-            doc["bout_confusion"] = _bout_confusion(
-                X, onset, bouts["direction"].to_numpy() == "left", trial_b,
-                lag=round(bres.auc.best_lag_s * rate), rate_hz=rate, window=window,
-                n_splits=ds.n_folds)
         except InputError as exc:
             store.warn(f"bout decoders skipped: {exc}")
     store.write_json("decode.json", doc)
@@ -161,36 +155,6 @@ def run_decode(settings, store, compute):
     store.write_array("decode/r2_folds", res.r2.folds, dimension_names=("fold", "lag"))
     store.set_info({"best_lag_s": res.r2.best_lag_s, "earliest_lag_s": res.r2.earliest_lag_s,
                     "null_kind": res.null_kind})
-
-
-def _bout_confusion(X, onset, left, trial_of_bout, *, lag, rate_hz, window, n_splits):
-    """Confusion matrix of the bout-direction decoder at one lag, summed over test folds.
-
-    The same features, folds and classifier as :func:`decode_bouts` (whole-trial folds, the
-    default nested logistic regression), refitted once at the best lag to keep each test
-    bout's predicted label. Rows are the true direction, columns the predicted one, in the
-    order of ``classes``.
-    """
-    from sklearn.base import clone
-    from sklearn.metrics import confusion_matrix
-
-    from pipeline.analysis import decode as _decode
-
-    F, ok = bout_windows(X, onset, window=window, lags=np.array([lag]))
-    keep = np.flatnonzero(ok)
-    feats, y = F[0, keep], np.where(left[keep], "left", "right")
-    groups = None if trial_of_bout is None else np.asarray(trial_of_bout)[keep]
-    clf = _decode._default_classifier(1)
-    pred = np.full(y.shape, "", dtype=object)
-    for tr, te in make_splitter(n_splits, gap=1, groups=groups).split(y, groups=groups):
-        if np.unique(y[tr]).size < 2:
-            continue
-        pred[te] = clone(clf).fit(feats[tr], y[tr]).predict(feats[te])
-    done = pred != ""
-    classes = ["left", "right"]
-    m = confusion_matrix(y[done], pred[done].astype(str), labels=classes)
-    return {"lag_s": lag / float(rate_hz), "classes": classes, "confusion": m.tolist(),
-            "n_bouts": int(done.sum())}
 
 
 def _target_sets(finite, min_samples):
