@@ -252,8 +252,12 @@ class DecodeSettings:
                       "are always added)", unit="s", ge=0.0)
     n_null: int = _f(200, doc="null refits (trial shuffles or circular shifts)", ge=0)
     pca_components: int = _f(0, doc="PCA components fitted within folds (0 = none)", ge=0)
-    pre_bout_window_s: float = _f(1.0, doc="window before bout onset for bout-wise targets",
+    pre_bout_window_s: float = _f(1.0, doc="window ending at each lag before bout onset for "
+                                  "the bout-wise decoders (about the indicator's rise)",
                                   unit="s", gt=0.0)
+    bout_feature: Literal["rise", "mean"] = _f("rise", doc="bout features: each cell's rise "
+                                               "over the window (baseline-subtracted) or its "
+                                               "mean in the window")
     n_null_bouts: int = _f(20, doc="label permutations of the bout-wise decoders", ge=0)
     seed: int = _f(0, doc="seed of the null permutations", ge=0)
 

@@ -13,16 +13,11 @@ from sklearn.pipeline import make_pipeline
 from sklearn.preprocessing import StandardScaler
 from sklearn.utils.estimator_checks import parametrize_with_checks
 
+from pipeline.analysis.bouts import bout_features, decode_bouts, sample_at
 from pipeline.analysis.classify import NestedLogistic
 from pipeline.analysis.cv import BlockedKFold
-from pipeline.analysis.decode import (
-    bout_windows,
-    decode_bouts,
-    decode_continuous,
-    lag_samples,
-    lagged_targets,
-)
-from pipeline.analysis.ridge import RidgePathCV, path_scores
+from pipeline.analysis.decode import decode_continuous, lag_samples, lagged_targets
+from pipeline.analysis.ridge import RidgeBasis, RidgePathCV, path_scores
 from pipeline.errors import ConfigError, InputError
 
 RATE_HZ = 2.0
@@ -109,15 +104,52 @@ def test_lagged_targets_and_lag_samples():
         lag_samples(lag_min_s=0.1, lag_max_s=0.2, rate_hz=RATE_HZ)
 
 
-def test_bout_windows_against_loop(rng):
-    X = rng.normal(size=(50, 4))
-    onsets = np.array([3, 20, 47])
-    F, ok = bout_windows(X, onsets, window=3, lags=np.array([-2, 0, 4]))
-    np.testing.assert_array_equal(ok, [False, True, False])
-    for i, lag in enumerate([-2, 0, 4]):
-        np.testing.assert_allclose(F[i, 1], X[20 + lag - 3: 20 + lag].mean(axis=0))
-    with pytest.raises(InputError, match="at least 1 sample"):
-        bout_windows(X, onsets, window=0, lags=np.array([0]))
+def _plane_times(n, n_planes, rate_hz=RATE_HZ):
+    """Volume starts at k / rate; plane z sampled z / (n_planes * rate) later."""
+    return np.arange(n)[:, None] / rate_hz + np.arange(n_planes)[None, :] / (n_planes * rate_hz)
+
+
+def test_sample_at_each_cells_own_plane_times(rng):
+    times = _plane_times(40, 4)
+    plane = rng.integers(0, 4, size=9)
+    a, b = rng.normal(size=9), rng.normal(size=9)
+    X = a + b * times[:, plane]            # each cell linear in its own sample time
+    q = rng.uniform(1.0, 18.0, size=25)
+    # linear interpolation reproduces a linear signal exactly at any time (common practice)
+    np.testing.assert_allclose(sample_at(X, q, times_s=times, plane=plane),
+                               a + b * q[:, None], rtol=1e-5, atol=1e-5)
+    Xr = rng.normal(size=(40, 9))
+    ours = sample_at(Xr, q, times_s=times, plane=plane)
+    for c in range(9):
+        # reference: numpy.interp on the cell's own plane times
+        np.testing.assert_allclose(ours[:, c], np.interp(q, times[:, plane[c]], Xr[:, c]),
+                                   rtol=1e-5, atol=1e-6)
+    with pytest.raises(InputError, match="the plane of each cell is required"):
+        sample_at(Xr, q, times_s=times)
+    with pytest.raises(InputError, match=r"cell planes: expected 9 values in 0..3"):
+        sample_at(Xr, q, times_s=times, plane=plane + 4)
+
+
+def test_bout_features_rise_and_mean(rng):
+    from scipy.integrate import trapezoid
+
+    times = _plane_times(50, 2)
+    plane = np.array([0, 1, 1])
+    X = rng.normal(size=(50, 3))
+    onset = np.array([6.3, 11.9])
+    rise = bout_features(X, onset, -1.0, times_s=times, plane=plane, window_s=1.5)
+    mean = bout_features(X, onset, -1.0, times_s=times, plane=plane, window_s=1.5,
+                         feature="mean")
+    for c in range(3):
+        t = times[:, plane[c]]
+        at = lambda q, c=c, t=t: np.interp(q, t, X[:, c])  # noqa: E731
+        np.testing.assert_allclose(rise[:, c], at(onset - 1.0) - at(onset - 2.5), atol=1e-5)
+        # reference: scipy.integrate.trapezoid over the window at the sample period (0.5 s)
+        grid = np.linspace(-2.5, -1.0, 4)
+        ref = [trapezoid(at(o + grid), grid) / 1.5 for o in onset]
+        np.testing.assert_allclose(mean[:, c], ref, atol=1e-5)
+    with pytest.raises(InputError, match="expected 'rise' or 'mean'"):
+        bout_features(X, onset, 0.0, times_s=times, plane=plane, window_s=1.0, feature="max")
 
 
 def test_planted_lead_recovered(rng):
@@ -148,23 +180,31 @@ def test_shuffled_targets_score_at_chance(rng):
 
 def test_bouts_planted_and_chance(rng):
     X, _, onsets, amp, trials = _session(rng)
-    res = decode_bouts(X, onsets, amp > 0, lags=np.array([-3]), rate_hz=RATE_HZ, window=2,
-                       angle=amp, trial_of_bout=trials[onsets])
-    # window [onset - 5, onset - 3) holds the premotor copy of the turn: AUC > 0.8
-    assert res.auc.mean[0] > 0.8
+    times = np.arange(len(X)) / RATE_HZ
+    onset_s = onsets / RATE_HZ
+    kw = {"times_s": times, "window_s": 1.0, "trial_of_bout": trials[onsets]}
+    res = decode_bouts(X, onset_s, amp > 0, lags_s=np.array([-2.0, 1.0]), angle=amp, **kw)
+    # premotor units carry the turn LEAD = 4 samples (2 s) early: their rise over
+    # [onset - 3 s, onset - 2 s] separates the directions (AUC > 0.8), and 1 s after the
+    # onset nothing is left to read (AUC near 0.5)
+    assert res.auc.mean[0] > 0.8 and abs(res.auc.mean[1] - 0.5) < 0.2
     assert res.angle_r2 is not None and res.angle_r2.mean[0] > 0.3
+    assert res.auc.best_lag_s == -2.0 and np.all(np.isfinite(res.C))
     json.dumps(res.to_dict(), allow_nan=False)
+    mean = decode_bouts(X, onset_s, amp > 0, lags_s=np.array([-1.5]), feature="mean", **kw)
+    assert mean.auc.mean[0] > 0.8 and mean.feature == "mean"
     fast = LogisticRegression(C=0.1, max_iter=1000)
-    with_null = decode_bouts(X, onsets, amp > 0, lags=np.array([-3]), rate_hz=RATE_HZ,
-                             window=2, classifier=fast, n_null=9, trial_of_bout=trials[onsets])
+    with_null = decode_bouts(X, onset_s, amp > 0, lags_s=np.array([-2.0]), classifier=fast,
+                             n_null=9, **kw)
     # planted signal beats every one of 9 trial shuffles: p = 1 / (9 + 1) (Phipson & Smyth)
     assert with_null.auc.p[0] == pytest.approx(0.1)
+    assert np.all(np.isnan(with_null.C))           # C is reported for NestedLogistic only
     aucs = []
     gen = np.random.default_rng(7)
     for _ in range(12):
         labels = gen.permutation(amp > 0)
-        aucs.append(decode_bouts(X, onsets, labels, lags=np.array([-3]), rate_hz=RATE_HZ,
-                                 window=2, classifier=fast).auc.mean[0])
+        aucs.append(decode_bouts(X, onset_s, labels, lags_s=np.array([-2.0]), times_s=times,
+                                 window_s=1.0, classifier=fast).auc.mean[0])
     # shuffled labels: AUC at chance, 0.5 +- 0.05 over repeats (common practice)
     assert abs(np.mean(aucs) - 0.5) < 0.05
 
@@ -175,9 +215,16 @@ def test_decode_errors(rng):
         decode_continuous(X, np.zeros(29), lags=np.array([0]), rate_hz=1.0, n_null=0)
     with pytest.raises(InputError, match="samples remain after trimming"):
         decode_continuous(X, np.zeros(30), lags=np.array([-12, 12]), rate_hz=1.0, n_null=0)
-    with pytest.raises(InputError, match="usable bouts"):
-        decode_bouts(X, np.array([5, 10, 15]), np.array([1, 0, 1]), lags=np.array([0]),
-                     rate_hz=1.0, window=2)
+    times = np.arange(30.0)
+    with pytest.raises(InputError, match="3 usable bouts"):
+        decode_bouts(X, np.array([5.0, 10.0, 15.0]), np.array([1, 0, 1]), times_s=times,
+                     lags_s=np.array([0.0]), window_s=2.0)
+    with pytest.raises(InputError, match="3 onsets but 2 labels"):
+        decode_bouts(X, np.array([5.0, 10.0, 15.0]), np.array([1, 0]), times_s=times,
+                     lags_s=np.array([0.0]), window_s=2.0)
+    with pytest.raises(InputError, match="positive length in s, got 0"):
+        decode_bouts(X, np.array([5.0, 10.0, 15.0]), np.array([1, 0, 1]), times_s=times,
+                     lags_s=np.array([0.0]), window_s=0)
 
 
 def test_without_null_p_is_missing(rng):
@@ -203,3 +250,36 @@ def test_nested_logistic_matches_grid_search_choice(rng):
                        scoring="roc_auc").fit(Z, y)
     assert ours.C_ == ref.best_params_["C"]
     np.testing.assert_allclose(ours.decision_function(X), ref.decision_function(Z), atol=1e-5)
+
+
+def test_nested_logistic_wide_equals_plain_logistic(rng):
+    # more features than samples: the fit runs in the row space of the training data
+    X = rng.normal(size=(60, 400))
+    y = (X[:, :5].sum(axis=1) + rng.normal(size=60)) > 0
+    ours = NestedLogistic(Cs=(0.01, 0.1), tol=1e-10, max_iter=10000).fit(X, y)
+    Z = (X - X.mean(0)) / X.std(0)
+    # reference: sklearn LogisticRegression on all 400 standardised features, same C
+    # (the L2 solution lies in the span of the training rows; Hastie et al. 2009, 18.3.5)
+    ref = LogisticRegression(C=ours.C_, tol=1e-10, max_iter=10000).fit(Z, y)
+    np.testing.assert_allclose(ours.coef_, ref.coef_, atol=1e-5)
+    np.testing.assert_allclose(ours.decision_function(X), ref.decision_function(Z), atol=1e-4)
+    np.testing.assert_allclose(ours.predict_proba(X), ref.predict_proba(Z), atol=1e-5)
+
+
+def test_wide_problems_never_form_cells_by_cells(rng):
+    import tracemalloc
+
+    n, n_cells = 80, 6000
+    X = rng.normal(size=(n, n_cells)).astype(np.float32)
+    y = X[:, 0] + rng.normal(size=n)
+    tracemalloc.start()
+    basis = RidgeBasis(X, np.arange(60))
+    basis.project_rows(np.arange(60, 80))
+    basis.coef(basis.project_targets(y[:60, None]))
+    NestedLogistic(Cs=(0.1,)).fit(X, y > 0)
+    peak = tracemalloc.get_traced_memory()[1]
+    tracemalloc.stop()
+    # the dual path decomposes the 60 x 60 kernel; a cells x cells float64 matrix would take
+    # 288 MB, the whole run stays below a tenth of that (a few float64 copies of X: 4 MB each)
+    assert basis.dual and basis.vec.shape[0] == 60
+    assert peak < n_cells * n_cells * 8 / 10

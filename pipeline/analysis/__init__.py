@@ -4,13 +4,12 @@ Kernels are pure NumPy functions of arrays; ``pipeline.analysis.stages`` maps th
 session store.
 """
 
+from pipeline.analysis.bouts import BoutDecode, bout_features, decode_bouts, sample_at
+from pipeline.analysis.classify import NestedLogistic
 from pipeline.analysis.cv import BlockedKFold, TrialKFold, gap_samples
 from pipeline.analysis.decode import (
-    BoutDecode,
     ContinuousDecode,
     LagCurve,
-    bout_windows,
-    decode_bouts,
     decode_continuous,
     lag_samples,
     lagged_targets,
@@ -44,7 +43,8 @@ from pipeline.analysis.tuning import (
 
 __all__ = [
     "BlockedKFold", "TrialKFold", "gap_samples",
-    "BoutDecode", "ContinuousDecode", "LagCurve", "bout_windows", "decode_bouts",
+    "BoutDecode", "ContinuousDecode", "LagCurve", "bout_features", "decode_bouts",
+    "NestedLogistic", "sample_at",
     "decode_continuous", "lag_samples", "lagged_targets", "make_splitter",
     "RidgeBasis", "RidgePathCV", "pearson_columns", "r2_columns",
     "bh_qvalues", "bh_reject", "binomial_interval", "circular_mean", "circular_shift_indices",

@@ -17,14 +17,10 @@ from typing import Any
 
 import numpy as np
 from scipy import stats as _sps
-from sklearn.base import clone
-from sklearn.metrics import balanced_accuracy_score, roc_auc_score
 
-from pipeline.analysis.classify import NestedLogistic
 from pipeline.analysis.cv import BlockedKFold, TrialKFold
 from pipeline.analysis.ridge import (
     RidgeBasis,
-    RidgePathCV,
     path_scores,
     pearson_columns,
     r2_columns,
@@ -39,13 +35,10 @@ from pipeline.errors import InputError
 __all__ = [
     "LagCurve",
     "ContinuousDecode",
-    "BoutDecode",
     "lag_samples",
     "lagged_targets",
-    "bout_windows",
     "make_splitter",
     "decode_continuous",
-    "decode_bouts",
 ]
 
 
@@ -136,32 +129,6 @@ class ContinuousDecode:
                 "null_kind": self.null_kind, "n_samples": self.n_samples}
 
 
-@dataclasses.dataclass
-class BoutDecode:
-    """Result of :func:`decode_bouts`: left/right and turn-angle scores per lag."""
-
-    auc: LagCurve
-    balanced_accuracy: LagCurve
-    angle_r2: LagCurve | None
-    n_bouts: int
-    n_left: int
-    window_s: float
-    confusion: np.ndarray
-    """(2, 2) test-fold counts at the best AUC lag: rows true, columns predicted (left, right)."""
-
-    def to_dict(self) -> dict[str, Any]:
-        """One entry per score (each with its own ``lags_s``) plus the scalars."""
-        out: dict[str, Any] = {"bout_auc": self.auc.to_dict(),
-                               "bout_balanced_accuracy": self.balanced_accuracy.to_dict()}
-        if self.angle_r2 is not None:
-            out["bout_angle_r2"] = self.angle_r2.to_dict()
-        out.update({"n_bouts": self.n_bouts, "n_left": self.n_left, "window_s": self.window_s})
-        out["bout_confusion"] = {"lag_s": self.auc.best_lag_s, "classes": ["left", "right"],
-                                 "confusion": self.confusion.tolist(),
-                                 "n_bouts": int(self.confusion.sum())}
-        return out
-
-
 def lag_samples(*, lag_min_s, lag_max_s, rate_hz):
     """Integer lags (samples) covering ``[lag_min_s, lag_max_s]`` at ``rate_hz``."""
     lo = math.ceil(lag_min_s * rate_hz - 1e-9)
@@ -197,34 +164,6 @@ def lagged_targets(y, lags):
     Y = np.moveaxis(vals, 2, 1).reshape(n, -1)
     valid &= np.all(np.isfinite(Y), axis=1)
     return Y, valid
-
-
-def bout_windows(X, onsets, *, window, lags):
-    """Mean activity in ``[onset + lag - window, onset + lag)`` for every bout and lag.
-
-    Returns
-    -------
-    F : ndarray of shape (n_lags, n_bouts, n_cells), float32
-    valid : ndarray of bool, shape (n_bouts,)
-        Bouts whose window lies inside the recording at every lag.
-    """
-    onsets = np.asarray(onsets, dtype=np.int64)
-    lags = np.asarray(lags, dtype=np.int64)
-    window = int(window)
-    if window < 1:
-        raise InputError(f"bout window: expected at least 1 sample, got {window}")
-    n, n_cells = X.shape
-    stop = onsets[None, :] + lags[:, None]
-    start = stop - window
-    valid = np.all((start >= 0) & (stop <= n), axis=0)
-    start, stop = np.clip(start, 0, n), np.clip(stop, 0, n)
-    out = np.empty((lags.size, onsets.size, n_cells), dtype=np.float32)
-    for a in range(0, n_cells, 4096):          # blocks of cells bound the float64 cumsum
-        sl = slice(a, min(a + 4096, n_cells))
-        cs = np.zeros((n + 1, sl.stop - sl.start))
-        np.cumsum(np.asarray(X[:, sl], dtype=np.float64), axis=0, out=cs[1:])
-        out[..., sl] = (cs[stop] - cs[start]) / window
-    return out, valid
 
 
 def make_splitter(n_splits, *, gap, groups=None):
@@ -355,111 +294,3 @@ class _Rows:
 
     def __getitem__(self, idx):
         return self.values[self.pos[idx]]
-
-
-def _default_classifier(gap):
-    return NestedLogistic(Cs=(1e-3, 1e-2, 1e-1, 1.0), cv=3, gap=gap)
-
-
-def decode_bouts(X, onsets, left, *, lags, rate_hz, window, angle=None, n_splits=5, gap=0,
-                 classifier=None, regressor=None, n_null=0, trial_of_bout=None, seed=0):
-    """Decode each bout's direction (and turn angle) from activity in a window before it.
-
-    Parameters
-    ----------
-    X : ndarray of shape (n_samples, n_cells)
-    onsets : ndarray of int, shape (n_bouts,)
-        Onset sample of each bout.
-    left : ndarray of bool, shape (n_bouts,)
-        True for a leftward bout.
-    lags : ndarray of int
-        The window ``[onset + lag - window, onset + lag)`` is tried at every lag.
-    rate_hz : float
-    window : int
-        Window length in samples.
-    angle : ndarray of shape (n_bouts,), optional
-        Signed turn angle per bout (radians); decoded with ``regressor``.
-    n_splits : int, default=5
-        Outer folds over bouts in time order (whole trials when ``trial_of_bout`` is given).
-    gap : int, default=0
-        Bouts removed from training on each side of a test fold.
-    classifier : sklearn classifier, optional
-        Default: :class:`~pipeline.analysis.classify.NestedLogistic`, L2 logistic regression
-        after standardisation with C chosen by ROC AUC over blocked inner folds of the
-        training bouts.
-    regressor : sklearn regressor, optional
-        Default :class:`~pipeline.analysis.ridge.RidgePathCV`.
-    n_null : int, default=0
-        Label permutations (by whole trial when ``trial_of_bout`` is given).
-
-    Returns
-    -------
-    BoutDecode
-
-    References
-    ----------
-    Cox DR (1958). The regression analysis of binary sequences. J R Stat Soc B 20:215-242.
-    Hanley JA, McNeil BJ (1982). The meaning and use of the area under a receiver operating
-    characteristic (ROC) curve. Radiology 143:29-36. doi:10.1148/radiology.143.1.7063747
-    """
-    left = np.asarray(left).astype(bool)
-    F, ok = bout_windows(X, onsets, window=window, lags=lags)
-    keep = np.flatnonzero(ok)
-    if keep.size < 2 * n_splits or np.unique(left[keep]).size < 2:
-        raise InputError(f"decode_bouts: {keep.size} usable bouts "
-                         f"({int(left[keep].sum())} left); need at least {2 * n_splits} with "
-                         f"both directions")
-    F, yl = F[:, keep], left[keep]
-    groups = None if trial_of_bout is None else np.asarray(trial_of_bout)[keep]
-    clf = _default_classifier(gap) if classifier is None else classifier
-    folds = list(make_splitter(n_splits, gap=gap, groups=groups).split(yl, groups=groups))
-    perms, _ = _null_indices(yl.size, n_null, trial_ids=groups, min_shift=1, seed=seed)
-    if groups is None and n_null:
-        gen = np.random.default_rng(seed)
-        perms = np.array([gen.permutation(yl.size) for _ in range(n_null)])
-
-    def scores(labels, lag_i, confusion=None):
-        auc, bacc = [], []
-        for tr, te in folds:
-            if np.unique(labels[tr]).size < 2 or np.unique(labels[te]).size < 2:
-                auc.append(np.nan)
-                bacc.append(np.nan)
-                continue
-            model = clone(clf).fit(F[lag_i, tr], labels[tr])
-            s = (model.decision_function(F[lag_i, te]) if hasattr(model, "decision_function")
-                 else model.predict_proba(F[lag_i, te])[:, 1])
-            pred = model.predict(F[lag_i, te])
-            auc.append(roc_auc_score(labels[te], s))
-            bacc.append(balanced_accuracy_score(labels[te], pred))
-            if confusion is not None:      # rows true, columns predicted; left first
-                np.add.at(confusion, (1 - labels[te].astype(int), 1 - pred.astype(int)), 1)
-        return np.array(auc), np.array(bacc)
-
-    n_lags = len(lags)
-    auc = np.empty((len(folds), n_lags))
-    bacc = np.empty_like(auc)
-    null_auc = np.empty((perms.shape[0], n_lags))
-    null_bacc = np.empty_like(null_auc)
-    confusion = np.zeros((n_lags, 2, 2), dtype=np.int64)
-    for j in range(n_lags):
-        auc[:, j], bacc[:, j] = scores(yl, j, confusion[j])
-        for i, p in enumerate(perms):
-            a, b = scores(yl[p], j)
-            null_auc[i, j], null_bacc[i, j] = np.nanmean(a), np.nanmean(b)
-    lags_s = np.asarray(lags) / float(rate_hz)
-    angle_curve = None
-    if angle is not None:
-        reg = RidgePathCV(cv=BlockedKFold(3, gap=gap)) if regressor is None else regressor
-        ya = np.asarray(angle, dtype=np.float64)[keep]
-        r2 = np.empty((len(folds), n_lags))
-        for j in range(n_lags):
-            for f, (tr, te) in enumerate(folds):
-                pred = clone(reg).fit(F[j, tr], ya[tr]).predict(F[j, te])
-                r2[f, j] = r2_columns(ya[te, None], pred[:, None])[0]
-        angle_curve = _curve("r2", lags_s, r2)
-    auc_curve = _curve("roc_auc", lags_s, auc, null_auc if n_null else None)
-    best = int(np.argmin(np.abs(lags_s - auc_curve.best_lag_s)))
-    return BoutDecode(auc_curve,
-                      _curve("balanced_accuracy", lags_s, bacc, null_bacc if n_null else None),
-                      angle_curve, int(keep.size), int(yl.sum()), window / float(rate_hz),
-                      confusion[best])

@@ -23,12 +23,9 @@ import numpy as np
 import pandas as pd
 import zarr
 
+from pipeline.analysis.bouts import decode_bouts
 from pipeline.analysis.cv import gap_samples
-from pipeline.analysis.decode import (
-    decode_bouts,
-    decode_continuous,
-    lag_samples,
-)
+from pipeline.analysis.decode import decode_continuous, lag_samples
 from pipeline.analysis.stats import circular_shift_indices, trial_shuffle_indices
 from pipeline.analysis.tuning import (
     curve_preference,
@@ -91,12 +88,10 @@ def _trial_per_volume(store):
     return None if trial is None else trial.reshape(trial.shape[0], -1)[:, 0]
 
 
-def _volume_index(store, table, column):
-    """Volume index of each row's time (imaging clock; rig-clock times converted)."""
+def _scope_times(store, table, column):
+    """A table column's times on the imaging clock (rig-clock times converted)."""
     from pipeline.align import ClockModel
 
-    plane_times = np.asarray(store.read_array(ALIGN["plane_times"])[...], dtype=np.float64)
-    start = plane_times.min(axis=1)
     t = table[column].to_numpy(dtype=np.float64)
     if column.endswith("_rig_s"):
         info = (store.record("align") or {}).get("info", {})
@@ -104,10 +99,32 @@ def _volume_index(store, table, column):
             raise StoreError(f"{column}: rig-clock times need the align stage's clock model; "
                              "re-run `forkmap run --from align`")
         t = ClockModel.from_dict(info["clock"]).rig_to_scope(t)
+    return t
+
+
+def _volume_index(store, table, column):
+    """Volume index of each row's time (imaging clock; rig-clock times converted)."""
+    plane_times = np.asarray(store.read_array(ALIGN["plane_times"])[...], dtype=np.float64)
+    start = plane_times.min(axis=1)
+    t = _scope_times(store, table, column)
     return np.clip(np.searchsorted(start, t, side="right") - 1, 0, start.size - 1)
 
 
-@stage("decode", requires=("traces", "align"), sections=("imaging", "decode"),
+def _cell_planes(store, n_cells, n_planes):
+    """Each activity row's plane (column of ``align/plane_times_s``), from cells.parquet."""
+    cells = store.read_table("cells.parquet")
+    if len(cells) != n_cells or "plane" not in cells:
+        raise InputError(f"cells.parquet: expected {n_cells} rows with a 'plane' column (one "
+                         f"per activity row), got {len(cells)} rows and columns "
+                         f"{list(cells.columns)}")
+    plane = cells["plane"].to_numpy(dtype=np.int64)
+    if plane.min(initial=0) < 0 or plane.max(initial=0) >= n_planes:
+        raise InputError(f"cells.parquet: plane values {plane.min()}..{plane.max()} outside "
+                         f"the {n_planes} planes of {ALIGN['plane_times']}")
+    return plane
+
+
+@stage("decode", requires=("traces", "cells", "align"), sections=("imaging", "decode"),
        enabled=lambda s: s.decode.enabled)
 def run_decode(settings, store, compute):
     """Decode the turn command (continuous, all lags) and bout direction/angle."""
@@ -133,14 +150,15 @@ def run_decode(settings, store, compute):
     doc.update({"feature": ds.feature, "gap_samples": gap, "rate_hz": rate})
     if store.has("bouts.parquet"):
         bouts = store.read_table("bouts.parquet")
-        onset = _volume_index(store, bouts, "onset_rig_s")
-        window = max(1, round(ds.pre_bout_window_s * rate))
+        plane_times = np.asarray(store.read_array(ALIGN["plane_times"])[...], dtype=np.float64)
+        plane = _cell_planes(store, X.shape[1], plane_times.shape[1])
+        onset_s = _scope_times(store, bouts, "onset_rig_s")
         trial_b = bouts["trial"].to_numpy() if "trial" in bouts else None
-        # bout windows tile the lag range in steps of one window (bounded feature memory)
-        bout_lags = np.unique(np.concatenate([lags[::-1][::window], [0]]))
         try:
-            bres = decode_bouts(X, onset, bouts["direction"].to_numpy() == "left", lags=bout_lags,
-                                rate_hz=rate, window=window,
+            # the same lag grid as the continuous decoder: one volume period
+            bres = decode_bouts(X, onset_s, bouts["direction"].to_numpy() == "left",
+                                times_s=plane_times, plane=plane, lags_s=lags / rate,
+                                window_s=ds.pre_bout_window_s, feature=ds.bout_feature,
                                 angle=bouts["angle_rad"].to_numpy(dtype=np.float64),
                                 n_splits=ds.n_folds, gap=1, n_null=ds.n_null_bouts,
                                 trial_of_bout=trial_b, seed=ds.seed)
