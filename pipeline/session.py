@@ -58,6 +58,8 @@ OUTPUTS: Mapping[str, tuple[str, tuple[str, ...]]] = {
     "behaviour_t_scope_s": ("align", ("session.zarr/align/behaviour_t_scope_s",)),
     "decode": ("decode", ("decode.json",)),
     "decode_weights": ("decode", ("session.zarr/decode/weights",)),
+    "decode_weights_table": ("decode", ("decode_weights.parquet",)),
+    "decode_weight_map": ("decode", ("session.zarr/decode/weight_map",)),
     "tuning": ("tuning", ("tuning.parquet",)),
     "tuning_curves": ("tuning", ("session.zarr/tuning/curves",)),
 }

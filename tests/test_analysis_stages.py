@@ -9,6 +9,7 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from pipeline.analysis.bouts import sample_at
 from pipeline.analysis.decode import decode_continuous, lag_samples
 from pipeline.analysis.stages import ALIGN, motor_nuisance, run_decode, run_tuning
 from pipeline.analysis.stats import trial_shuffle_indices
@@ -85,7 +86,11 @@ def test_decode_stage_matches_kernel(rng, tmp_path, monkeypatch, out_of_core):
     sub.commit()
     doc = json.loads((base.root / "decode.json").read_text())
     ds = settings.decode
-    eager = decode_continuous(act.T, turn.mean(axis=1),
+    # each cell resampled at the volume's mean plane time from its own plane's samples
+    plane_times = base.read_array(ALIGN["plane_times"])[...]
+    X = sample_at(act.T, plane_times.mean(axis=1), times_s=plane_times,
+                  plane=np.arange(act.shape[0]) % N_PLANES)
+    eager = decode_continuous(X, turn.mean(axis=1),
                               lags=lag_samples(lag_min_s=-2.0, lag_max_s=0.0, rate_hz=RATE_HZ),
                               rate_hz=RATE_HZ, alphas=ds.alphas, n_splits=3, gap=doc["gap_samples"],
                               trial_ids=trial, n_null=5)
@@ -97,6 +102,14 @@ def test_decode_stage_matches_kernel(rng, tmp_path, monkeypatch, out_of_core):
     df = decode_table(doc)
     assert {"turn_r2", "turn_r", "bout_auc"} <= set(df["decoder"])
     np.testing.assert_allclose(df.query("decoder == 'turn_r2'")["mean"], eager.r2.mean)
+    # weights per cell: a table with positions, and painted at each cell's label voxels
+    table = pd.read_parquet(base.root / "decode_weights.parquet")
+    np.testing.assert_allclose(table["turn_weight"], eager.weights, rtol=1e-5)
+    painted = base.read_array("decode/weight_map")[...]
+    labels = base.labels()[...]
+    for cell in (1, 7):
+        assert np.all(painted[labels == cell] == np.float32(table.loc[cell - 1, "turn_weight"]))
+    assert np.all(np.isnan(painted[labels == 0]))
 
 
 def test_tuning_stage_matches_kernel(rng, tmp_path):

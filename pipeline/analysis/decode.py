@@ -60,9 +60,12 @@ def _jsonable(obj: Any) -> Any:
 class LagCurve:
     """One score across lags: per fold, mean with a 95% interval across folds, and its null.
 
-    ``p`` uses the +1 correction (Phipson & Smyth 2010); ``earliest_lag_s`` is the most
-    negative lag whose mean exceeds the null's 95th percentile with ``p < 0.05`` (None when
-    no lag does, or without a null).
+    ``p`` uses the +1 correction (Phipson & Smyth 2010). A lag *exceeds the null* when its
+    mean is above the null's 95th percentile with ``p < 0.05``; ``earliest_lag_s`` is the
+    earliest lag of the unbroken run of such lags that reaches the best lag, i.e. how long
+    before the peak the score is continuously above the null (an isolated early lag, one of
+    many tested at 5 %, does not count). None when the best lag itself does not exceed the
+    null, or without a null.
     """
 
     metric: str
@@ -96,8 +99,13 @@ def _curve(metric, lags_s, folds, null=None, *, level=0.95, alpha_p=0.05):
     if null.shape[0]:
         p = permutation_pvalue(mean, null)
         p95 = np.quantile(null, 0.95, axis=0)
-        ok = np.flatnonzero((mean > p95) & (p < alpha_p))
-        earliest = float(lags_s[ok].min()) if ok.size else None
+        above = (mean > p95) & (p < alpha_p)
+        earliest = None
+        if np.any(np.isfinite(mean)) and above[int(np.nanargmax(mean))]:
+            j = int(np.nanargmax(mean))
+            while j > 0 and above[j - 1]:
+                j -= 1
+            earliest = float(lags_s[j])
     else:
         p = np.full(mean.shape, np.nan)
         p95 = np.full(mean.shape, np.nan)

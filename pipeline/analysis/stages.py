@@ -23,7 +23,7 @@ import numpy as np
 import pandas as pd
 import zarr
 
-from pipeline.analysis.bouts import decode_bouts
+from pipeline.analysis.bouts import decode_bouts, sample_at
 from pipeline.analysis.cv import gap_samples
 from pipeline.analysis.decode import decode_continuous, lag_samples
 from pipeline.analysis.stats import circular_shift_indices, trial_shuffle_indices
@@ -61,6 +61,34 @@ class _TimeMajor:
     def __getitem__(self, key):
         rows, cols = key
         return np.asarray(self.arr.oindex[cols, rows]).T
+
+
+class _AtTimes:
+    """Activity resampled at common times, computed block by block on indexing (for data
+    read from zarr; in memory :func:`sample_at` is applied once)."""
+
+    def __init__(self, X, query_s, times_s, plane):
+        self.X, self.query_s, self.times_s, self.plane = X, query_s, times_s, plane
+        self.shape = (len(query_s), X.shape[1])
+        self.ndim = 2
+
+    def __getitem__(self, key):
+        rows, cols = key
+        cols = np.arange(self.shape[1])[cols]
+        return sample_at(_Columns(self.X, cols), np.asarray(self.query_s)[rows],
+                         times_s=self.times_s, plane=self.plane[cols])
+
+
+class _Columns:
+    """Some columns of a (t, cells) array, indexable as ``[rows, cols]`` (cols relative)."""
+
+    def __init__(self, X, cols):
+        self.X, self.cols = X, cols
+        self.shape = (X.shape[0], cols.size)
+
+    def __getitem__(self, key):
+        rows, cols = key
+        return self.X[rows, self.cols[cols]]
 
 
 def _activity(path):
@@ -136,6 +164,14 @@ def run_decode(settings, store, compute):
     if y.shape[0] != X.shape[0]:
         raise InputError(f"{ALIGN['turn']}: {y.shape[0]} volumes, but traces/{ds.feature} has "
                          f"{X.shape[0]}")
+    plane_times = np.asarray(store.read_array(ALIGN["plane_times"])[...], dtype=np.float64)
+    plane_times = plane_times.reshape(plane_times.shape[0], -1)
+    plane = _cell_planes(store, X.shape[1], plane_times.shape[1])
+    # the target is the plane average of the turn command, i.e. the turn at each volume's
+    # mean plane time: every cell is resampled to that time from its own plane's samples
+    t_mid = plane_times.mean(axis=1)
+    Xc = (sample_at(X, t_mid, times_s=plane_times, plane=plane) if isinstance(X, np.ndarray)
+          else _AtTimes(X, t_mid, plane_times, plane))
     trial = _trial_per_volume(store)
     if trial is not None:
         # CV groups are contiguous runs: each trial, and each gap between trials (id -1)
@@ -143,15 +179,17 @@ def run_decode(settings, store, compute):
     lags = lag_samples(lag_min_s=ds.lag_min_s, lag_max_s=ds.lag_max_s, rate_hz=rate)
     gap = gap_samples(rate_hz=rate, decay_s=im.decay_s, lag_span_s=ds.lag_max_s - ds.lag_min_s,
                       extra_s=ds.gap_s)
-    res = decode_continuous(X, y, lags=lags, rate_hz=rate, alphas=ds.alphas,
+    res = decode_continuous(Xc, y, lags=lags, rate_hz=rate, alphas=ds.alphas,
                             n_splits=ds.n_folds, gap=gap, trial_ids=trial, n_null=ds.n_null,
                             n_components=ds.pca_components, seed=ds.seed)
+    del Xc
     doc: dict[str, Any] = res.to_dict()
     doc.update({"feature": ds.feature, "gap_samples": gap, "rate_hz": rate})
+    if res.null_kind == "circular-shift":
+        doc["null_warning"] = CIRCULAR_WARNING
+        store.warn(CIRCULAR_WARNING)
     if store.has("bouts.parquet"):
         bouts = store.read_table("bouts.parquet")
-        plane_times = np.asarray(store.read_array(ALIGN["plane_times"])[...], dtype=np.float64)
-        plane = _cell_planes(store, X.shape[1], plane_times.shape[1])
         onset_s = _scope_times(store, bouts, "onset_rig_s")
         trial_b = bouts["trial"].to_numpy() if "trial" in bouts else None
         try:
@@ -171,8 +209,43 @@ def run_decode(settings, store, compute):
                              "alpha": res.weights_alpha}, dimension_names=("cell",))
     store.write_array("decode/lags_s", res.r2.lags_s, dimension_names=("lag",))
     store.write_array("decode/r2_folds", res.r2.folds, dimension_names=("fold", "lag"))
+    _write_weight_maps(store, res.weights, res.weights_lag_s)
     store.set_info({"best_lag_s": res.r2.best_lag_s, "earliest_lag_s": res.r2.earliest_lag_s,
                     "null_kind": res.null_kind})
+
+
+#: shown in the report whenever the continuous decoder's null had to use circular shifts
+CIRCULAR_WARNING = ("decode: no trials, so the null shifts the turn series circularly; on "
+                    "slowly drifting signals circular shifts can overstate significance "
+                    "(Harris 2020, bioRxiv doi:10.1101/2020.11.29.402719)")
+
+
+def _write_weight_maps(store, weights, lag_s):
+    """Decoder weights per cell (a table with positions) and painted into the label volume."""
+    cells = store.read_table("cells.parquet")
+    table = pd.DataFrame({"cell": cells["id"].to_numpy(), "plane": cells["plane"].to_numpy(),
+                          **{c: cells[c].to_numpy(dtype=np.float64)
+                             for c in ("z_um", "y_um", "x_um") if c in cells},
+                          "turn_weight": np.asarray(weights, dtype=np.float64)})
+    store.write_table("decode_weights.parquet", table,
+                      metadata={"units": {"z_um": "um", "y_um": "um", "x_um": "um",
+                                          "turn_weight": "turn units per activity unit"},
+                                "lag_s": lag_s})
+    try:
+        labels = store.labels()
+    except StoreError:
+        store.warn("no cell label volume: decoder weight map not painted")
+        return
+    ids = cells["id"].to_numpy()
+    lut = np.full(int(max(ids.max(initial=0), 0)) + 1, np.nan, dtype=np.float32)
+    lut[ids] = weights
+    arr = store.create_array("decode/weight_map", shape=tuple(labels.shape), dtype="float32",
+                             chunks=(1, *labels.shape[1:]), fill_value=np.nan,
+                             dimension_names=("z", "y", "x"),
+                             attrs={"unit": "turn units per activity unit", "lag_s": lag_s})
+    for z in range(labels.shape[0]):
+        lab = np.asarray(labels[z])
+        arr[z] = np.where(lab > 0, lut[np.clip(lab, 0, lut.size - 1)], np.nan)
 
 
 def _target_sets(finite, min_samples):
