@@ -140,18 +140,39 @@ def test_decoder_peaks_at_planted_premotor_lead(run):
     # lag < 0 = activity before the turn; within one volume (0.5 s at 2 Hz)
     assert abs(doc["turn_r2"]["best_lag_s"] + lead_s) <= 1.0 / doc["rate_hz"] + 1e-9
     assert max(doc["turn_r2"]["mean"]) > max(doc["turn_r2"]["null_p95"])
-    # bout direction: measured peak AUC 0.785 on seed 0 (the 0.8 target is the xfail below)
-    assert max(doc["bout_auc"]["mean"]) > 0.7
     conf = np.asarray(doc["bout_confusion"]["confusion"])
     assert conf.shape == (2, 2) and np.trace(conf) > conf.sum() / 2   # better than chance
     table = s.decoding
     assert {"lag_s", "mean", "decoder"} <= set(table.columns)
 
 
-@pytest.mark.xfail(strict=True, reason="peak bout-direction AUC 0.785 on seed 0 (1 s window, "
-                   "1 s lag steps); target 0.8")
 def test_bout_direction_auc_above_0_8(run):
-    assert max(run["session"].decoding_summary["bout_auc"]["mean"]) > 0.8
+    cells = pd.read_parquet(run["truth"] / "cells.parquet")
+    lead_s = float(cells.loc[cells["cell_class"] == "premotor", "lead_s"].median())
+    auc = run["session"].decoding_summary["bout_auc"]
+    # target AUC > 0.8 (issue); measured peak 0.785 with 1 s window means in 1 s lag steps,
+    # 0.908 with each cell's rise over 1 s read on its plane times in 0.5 s lag steps (seed 0;
+    # 0.911 on seed 1, 0.945 on the default preset)
+    assert max(auc["mean"]) > 0.8
+    # the premotor transient starts lead_s before the onset (demo_volume/README.md): the best
+    # window ends after it starts and before the bout
+    assert -lead_s <= auc["best_lag_s"] < 0
+
+
+def test_decoder_weight_map_separates_premotor_sides(run):
+    s = run["session"]
+    truth = pd.read_parquet(run["truth"] / "cells.parquet")
+    weights = pd.read_parquet(run["out"] / "decode_weights.parquet")
+    pos = ["z_um", "y_um", "x_um"]
+    dist, idx = cKDTree(truth[pos].to_numpy()).query(weights[pos].to_numpy())
+    matched = truth.iloc[idx].assign(weight=weights["turn_weight"].to_numpy())[dist < 3.0]
+    pm = matched[matched["cell_class"] == "premotor"]
+    # left-side premotor cells fire before leftward (positive) turns (demo_volume/README.md),
+    # so their weights in the turn decoder are positive on average, right-side ones negative
+    assert pm.loc[pm["side"] == "left", "weight"].mean() > 0
+    assert pm.loc[pm["side"] == "right", "weight"].mean() < 0
+    vol = s.array("decode_weight_map")
+    assert vol.shape == s.array("labels").shape
 
 
 # ---- tuning ---------------------------------------------------------------------------------

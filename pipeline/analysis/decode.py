@@ -263,7 +263,7 @@ def decode_continuous(X, y, *, lags, rate_hz, alphas=(0.1, 1.0, 10.0, 100.0, 1e3
         for itr, ite in inner.split(tr, groups=g_tr):
             total += path_scores(X, _Rows(Yv, rows), rows[tr[itr]], rows[tr[ite]],
                                  alphas=alphas, standardize=standardize,
-                                 n_components=n_components)[0]
+                                 n_components=n_components, pearson=False)[0]
         best = np.argmax(total, axis=0)
         chosen[f] = alphas[best]
         basis = RidgeBasis(X, rows[tr], standardize=standardize, n_components=n_components)

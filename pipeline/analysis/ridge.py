@@ -146,23 +146,26 @@ def _blocks(n, size=_BLOCK_CELLS):
     return [slice(a, min(a + size, n)) for a in range(0, n, size)]
 
 
-def path_scores(X, Y, train, test, *, alphas, standardize=True, n_components=0):
+def path_scores(X, Y, train, test, *, alphas, standardize=True, n_components=0, pearson=True):
     """R^2 and Pearson r on the test rows for every penalty and target column.
 
     Returns
     -------
     r2, r : ndarray of shape (n_alphas, n_targets)
+        ``r`` is None when ``pearson=False`` (penalty selection needs only R^2).
     """
     basis = RidgeBasis(X, train, standardize=standardize, n_components=n_components)
     a_proj = basis.project_targets(Y[train])
     z = basis.project_rows(test)
     y_mean = Y[train].mean(axis=0)
     r2 = np.empty((len(alphas), Y.shape[1]))
-    r = np.empty_like(r2)
+    r = np.empty_like(r2) if pearson else None
+    y_test = Y[test]
     for i, alpha in enumerate(alphas):
         pred = z @ (a_proj / (basis.s2 + alpha)[:, None]) + y_mean
-        r2[i] = r2_columns(Y[test], pred)
-        r[i] = pearson_columns(Y[test], pred)
+        r2[i] = r2_columns(y_test, pred)
+        if r is not None:
+            r[i] = pearson_columns(y_test, pred)
     return r2, r
 
 
@@ -227,7 +230,7 @@ class RidgePathCV(RegressorMixin, BaseEstimator):
             for train, test in cv.split(X, Y2, groups):
                 r2, _ = path_scores(X, Y2, train, test, alphas=alphas,
                                     standardize=self.standardize,
-                                    n_components=self.n_components)
+                                    n_components=self.n_components, pearson=False)
                 total += r2
                 n_folds += 1
             self.cv_r2_ = total / n_folds
