@@ -9,7 +9,6 @@ import numpy as np
 import pandas as pd
 import pytest
 
-from pipeline.analysis.bouts import sample_at
 from pipeline.analysis.decode import decode_continuous, lag_samples
 from pipeline.analysis.stages import ALIGN, motor_nuisance, run_decode, run_tuning
 from pipeline.analysis.stats import trial_shuffle_indices
@@ -86,11 +85,7 @@ def test_decode_stage_matches_kernel(rng, tmp_path, monkeypatch, out_of_core):
     sub.commit()
     doc = json.loads((base.root / "decode.json").read_text())
     ds = settings.decode
-    # each cell resampled at the volume's mean plane time from its own plane's samples
-    plane_times = base.read_array(ALIGN["plane_times"])[...]
-    X = sample_at(act.T, plane_times.mean(axis=1), times_s=plane_times,
-                  plane=np.arange(act.shape[0]) % N_PLANES)
-    eager = decode_continuous(X, turn.mean(axis=1),
+    eager = decode_continuous(act.T, turn.mean(axis=1),
                               lags=lag_samples(lag_min_s=-2.0, lag_max_s=0.0, rate_hz=RATE_HZ),
                               rate_hz=RATE_HZ, alphas=ds.alphas, n_splits=3, gap=doc["gap_samples"],
                               trial_ids=trial, n_null=5)

@@ -18,12 +18,14 @@ on plane times 0.91 / 0.90 / 0.95.
 
 from __future__ import annotations
 
+import contextlib
 import dataclasses
 from typing import Any
 
 import numpy as np
 from sklearn.base import clone
 from sklearn.metrics import balanced_accuracy_score, roc_auc_score
+from threadpoolctl import threadpool_limits
 
 from pipeline.analysis.classify import NestedLogistic
 from pipeline.analysis.cv import BlockedKFold
@@ -34,6 +36,11 @@ from pipeline.errors import InputError
 __all__ = ["BoutDecode", "sample_at", "bout_features", "decode_bouts"]
 
 _BLOCK_CELLS = 4096
+#: bouts x cells up to this size are fitted with one BLAS/OpenMP thread: on small problems the
+#: threads' synchronisation and spin-waiting cost more than they save (measured: a nested
+#: logistic fit on 100 bouts x 196 cells took 1.2 s of CPU per 10 fits with two threads, 0.64 s
+#: with one, the same wall time)
+SINGLE_THREAD_SIZE = 10_000_000
 
 
 @dataclasses.dataclass
@@ -260,24 +267,27 @@ def decode_bouts(X, onset_s, left, *, times_s, lags_s, window_s, plane=None, fea
     null_bacc = np.empty_like(null_auc)
     confusion = np.zeros((n_lags, 2, 2), dtype=np.int64)
     r2 = np.full((n_folds, n_lags), np.nan)
-    for j, lag in enumerate(lags_s):
-        F = bout_features(X, onset_s[keep], lag, times_s=times_s, window_s=window_s,
-                          plane=plane, feature=feature)
-        for f, (tr, te) in enumerate(folds):
-            fit = _fit_score(clf, F, yl, tr, te)
-            if fit is None:
-                continue
-            auc[f, j], bacc[f, j], pred, chosen_c[f, j] = fit
-            # rows true, columns predicted; left first
-            np.add.at(confusion[j], (1 - yl[te].astype(int), 1 - pred.astype(int)), 1)
-        for i, p in enumerate(perms):
-            scores = [_fit_score(clf, F, yl[p], tr, te) for tr, te in folds]
-            null_auc[i, j] = np.nanmean([s[0] if s else np.nan for s in scores])
-            null_bacc[i, j] = np.nanmean([s[1] if s else np.nan for s in scores])
-        if reg is not None:
+    small = keep.size * X.shape[1] <= SINGLE_THREAD_SIZE
+    with threadpool_limits(limits=1) if small else contextlib.nullcontext():
+        for j, lag in enumerate(lags_s):
+            F = bout_features(X, onset_s[keep], lag, times_s=times_s, window_s=window_s,
+                              plane=plane, feature=feature)
             for f, (tr, te) in enumerate(folds):
-                pred_a = clone(reg).fit(F[tr], ya[tr]).predict(F[te])
-                r2[f, j] = r2_columns(ya[te, None], pred_a[:, None])[0]
+                fit = _fit_score(clf, F, yl, tr, te)
+                if fit is None:
+                    continue
+                auc[f, j], bacc[f, j], pred, chosen_c[f, j] = fit
+                # rows true, columns predicted; left first
+                np.add.at(confusion[j], (1 - yl[te].astype(int), 1 - pred.astype(int)), 1)
+            for i, p in enumerate(perms):
+                scores = [_fit_score(clf, F, yl[p], tr, te) for tr, te in folds]
+                null_auc[i, j] = np.nanmean([s[0] if s else np.nan for s in scores])
+                null_bacc[i, j] = np.nanmean([s[1] if s else np.nan for s in scores])
+            if reg is not None:
+                for f, (tr, te) in enumerate(folds):
+                    pred_a = clone(reg).fit(F[tr], ya[tr]).predict(F[te])
+                    r2[f, j] = r2_columns(ya[te, None], pred_a[:, None])[0]
+    angle_curve = None if reg is None else _curve("r2", lags_s, r2)
     angle_curve = None if reg is None else _curve("r2", lags_s, r2)
     auc_curve = _curve("roc_auc", lags_s, auc, null_auc if n_null else None)
     best = int(np.argmin(np.abs(lags_s - auc_curve.best_lag_s)))
