@@ -167,3 +167,20 @@ def test_motor_nuisance_leads_and_indicator_decay() -> None:
     assert left0[:20].max() == 0.0
     assert np.argmax(left2) == 18           # the lead-2 copy peaks two volumes earlier
     assert parts[3][:, 1].max() == 2.0 and parts[3][:, 0].max() == 0.0
+
+
+def test_decode_stage_without_trials_warns_about_circular_shifts(rng, tmp_path):
+    import shutil
+
+    settings = _settings(tmp_path)
+    base, *_ = _prepare(rng, settings)
+    shutil.rmtree(base.array_path(ALIGN["trial"]))          # a session without trials
+    sub = base.stage_store("decode", "h", resumable=False)
+    with Compute(ComputeSettings(workers=1), quiet=True) as compute:
+        run_decode(settings, sub, compute)
+    sub.commit()
+    doc = json.loads((base.root / "decode.json").read_text())
+    # circular shifts overstate significance on drifting signals (Harris 2020): said in the
+    # document and as a stage warning for the report
+    assert doc["null_kind"] == "circular-shift"
+    assert "Harris 2020" in doc["null_warning"]
