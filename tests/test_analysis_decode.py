@@ -283,3 +283,20 @@ def test_wide_problems_never_form_cells_by_cells(rng):
     # 288 MB, the whole run stays below a tenth of that (a few float64 copies of X: 4 MB each)
     assert basis.dual and basis.vec.shape[0] == 60
     assert peak < n_cells * n_cells * 8 / 10
+
+
+def test_earliest_lag_is_the_unbroken_run_above_null_and_chance():
+    from pipeline.analysis.decode import _curve
+
+    lags_s = np.array([-3.0, -2.5, -2.0, -1.5, -1.0])
+    folds = np.array([[0.30, -0.01, 0.20, 0.25, 0.50],
+                      [0.30, -0.01, 0.20, 0.25, 0.50]])
+    null = np.full((19, 5), -0.05)          # shuffled-target refits score below zero
+    curve = _curve("r2", lags_s, folds, null)
+    # every lag beats all 19 nulls: p = 1 / (19 + 1) (Phipson & Smyth 2010) ...
+    np.testing.assert_allclose(curve.p, 0.05)
+    assert curve.earliest_lag_s is None                     # p must be below 0.05
+    curve = _curve("r2", lags_s, folds, np.full((39, 5), -0.05))
+    # ... with 39 nulls p = 0.025 < 0.05; -2.5 s beats the null but not chance (R^2 < 0), so
+    # the run above null and chance that reaches the best lag (-1.0 s) starts at -2.0 s
+    assert curve.best_lag_s == -1.0 and curve.earliest_lag_s == -2.0
