@@ -223,7 +223,7 @@ class TracesSettings:
     f0_floor: float = _f(1.0, doc="lower bound on the baseline F0", unit="counts", gt=0.0)
     f0_floor_frac: float = _f(0.1, doc="lower bound on F0 as a fraction of the cell's median",
                               ge=0.0)
-    deconvolve: bool = _f(True, doc="OASIS deconvolution into events")
+    deconvolve: bool = _f(True, doc="OASIS deconvolution into events and a denoised dF/F trace")
     decay_s: float = _f(1.5, doc="indicator decay time constant (AR(1) model)", unit="s",
                         gt=0.0)
     event_min_sigma: float = _f(3.0, doc="smallest event, in noise sigmas", ge=0.0)
