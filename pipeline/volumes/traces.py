@@ -36,7 +36,9 @@ def subtract_neuropil(cell_f, neuropil_f, *, ratio=0.7):
         Mean fluorescence of each cell's neuropil ring.
     ratio : float, default=0.7
         Contamination ratio. 0.7 is common practice for cellular-resolution imaging of
-        GCaMP-class indicators; 0 disables the correction.
+        GCaMP-class indicators; 0 disables the correction. On the demo sessions 0.7 also gave
+        the best median dF/F correlation with the planted activity of 0, 0.7 and 1 (1 lost
+        0.02-0.04: the ring still catches flanks of nearby nuclei).
 
     Returns
     -------
@@ -218,6 +220,10 @@ def delta_f_over_f(
         Baseline percentile. The 20th stays on the baseline while a cell is active for up to
         ~80 % of the window, yet sits only ~0.84 noise sigma below the noise median (the 8th
         sits ~1.4 sigma below, biasing dF/F upwards in dim, noisy cells).
+        On the demo sessions (bleaching 8 %, 1 % ripple of 170 s, per-cell drift of 60 s
+        time scale) 60 s and the 20th percentile were the best or within 0.006 of the best of
+        30 / 60 / 120 s and the 8th / 20th / 50th percentiles for the median correlation with
+        the planted activity; the error left is white photon noise, not baseline wander.
     f0_floor : float, default=1.0
         Absolute lower bound on F0 (fluorescence units).
     f0_floor_frac : float, default=0.1
