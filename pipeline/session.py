@@ -371,7 +371,7 @@ class Session:
         kind : {"raw", "neuropil", "corrected", "dff", "events", "denoised"}
             ``denoised`` is the dF/F trace fitted by noise-constrained OASIS (a non-negative
             AR(1) calcium trace whose residual has the cell's noise power); it follows the
-            planted activity more closely than ``dff`` (median correlation 0.92 against 0.82
+            planted activity more closely than ``dff`` (median correlation 0.92 against 0.81
             on the small demo) but is a model fit: it is never negative and small transients
             under the noise may be missing.
 
