@@ -61,11 +61,12 @@ def test_clock_recovers_planted_offset_drift_and_dropped_pulses(run):
     # (demo_volume/README.md), so within one rig sample
     assert abs(clock["offset_s"] - truth["offset_s"]) < 5e-3
     # drift: on the 140 s small session the least-squares standard error is ~2 ppm
-    # (README "least-squares standard error ~2 ppm on small"); measured error 3.6 ppm with
-    # SE 2.0 ppm on seed 0, so the check is three standard errors
+    # (README "least-squares standard error ~2 ppm on small"); the interval fit on the edge
+    # brackets does far better (next test), so three least-squares standard errors is loose
     se = _drift_se_ppm(s)
     assert 1.0 < se < 3.0
     assert abs(clock["drift_ppm"] - truth["drift_ppm"]) < 3 * se
+    assert clock["fit"] == "interval"
     assert sorted(clock["dropped_volume_indices"]) == sorted(truth["dropped_trigger_volumes"])
     assert clock["spurious_pulse_indices"] == []
     # Session converts rig times with the same model the align stage applied
@@ -74,11 +75,12 @@ def test_clock_recovers_planted_offset_drift_and_dropped_pulses(run):
     np.testing.assert_allclose(beh["t_s"].to_numpy(), t_model, atol=1e-9)
 
 
-@pytest.mark.xfail(strict=True, reason="drift error 3.6 ppm on seed 0 (SE 2.0 ppm): a "
-                   "least-squares line on 0-5 ms edge lags; a bracketing (interval) fit "
-                   "would be tighter")
-def test_clock_drift_within_3_ppm(run):
-    assert abs(run["session"].clock["drift_ppm"] - run["clock"]["drift_ppm"]) < 3.0
+def test_clock_drift_within_1_ppm(run):
+    # the floor asked of the demo: drift within 1 ppm of the planted 40 ppm. Measured with the
+    # interval (bracketing) fit: +0.21 ppm on small seed 0 (least squares: -3.6), -0.24 on
+    # small seed 1 (-0.61), -0.09 on default seed 0 (-0.62); on simulated 140 s sessions the
+    # interval fit's error is ~0.45 ppm rms (tests/test_align_clocks.py)
+    assert abs(run["session"].clock["drift_ppm"] - run["clock"]["drift_ppm"]) < 1.0
 
 
 # ---- behaviour ------------------------------------------------------------------------------
