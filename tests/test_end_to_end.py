@@ -112,24 +112,32 @@ def _split_errors_s(run) -> np.ndarray:
 def test_splits_recovered(run):
     err = _split_errors_s(run)
     ibi = _bout_interval_s(run["truth"])
-    # heading changes only in bouts (README), so a split shows in the trajectory at the next
-    # bout at the earliest. Measured on seed 0: 20 of 21 splits found, 52% within one bout
-    # interval (0.75 s), all found within two; the 90%-within-one target is the xfail below
+    # heading changes only in bouts (README): the split is found at the first movement that
+    # steers for the new goal and dated to the middle of the movement before it (the crossing
+    # happens while the animal moves). Measured on seed 0: 20 of 21 planted splits found (one
+    # extra), 81% within one bout interval (0.75 s; seed 1: 88%, default seed 0: 85%), 90%
+    # within two; the 90%-within-one target is the xfail below
     assert np.mean(np.isfinite(err)) >= 0.9
-    assert np.mean(err <= 2 * ibi) >= 0.9
-    assert np.mean(err <= ibi) >= 0.45
+    assert np.mean(err <= 2 * ibi) >= 0.85
+    assert np.mean(err <= ibi) >= 0.75
+    # a split dated to the right bout is within half a bout (bouts last 0.2-0.35 s, README)
+    assert np.median(err[np.isfinite(err)]) < 0.15
 
 
-@pytest.mark.xfail(strict=True, reason="52% of planted splits within one bout interval on "
-                   "seed 0 (errors 0.1-1.5 s); target 90%")
+@pytest.mark.xfail(strict=True, reason="81% of planted splits within one bout interval on "
+                   "seed 0 (17 of 21; seed 1: 88%, default: 85%): most misses are first "
+                   "splits of three-target trials dated a few bouts early (the two goals differ "
+                   "little while the targets are far); target 90%")
 def test_splits_within_one_bout_interval(run):
     assert np.mean(_split_errors_s(run) <= _bout_interval_s(run["truth"])) >= 0.9
 
 
 def test_critical_angle_near_planted(run):
     crit = run["session"].critical_angle
-    # planted critical angle 100 deg (demo_volume/README.md); tolerance 5 deg (brief)
+    # planted critical angle 100 deg (demo_volume/README.md); tolerance 5 deg (brief).
+    # Measured (angle inside the most split brackets): 100.4 deg, 95% CI 94.5-101.2 on seed 0
     assert abs(np.degrees(crit["estimate_rad"]) - 100.0) < 5.0
+    assert crit["ci_low_rad"] <= np.radians(100.0) <= crit["ci_high_rad"]
     assert crit["ci_low_rad"] <= crit["estimate_rad"] <= crit["ci_high_rad"]
 
 
