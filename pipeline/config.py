@@ -139,12 +139,12 @@ class BehaviourSettings:
                                     ge=0.0)
     bout_min_gap_s: float = _f(0.05, doc="same-sign turn events closer than this merge",
                                unit="s", ge=0.0)
-    split_resample_s: float = _f(0.1, doc="sample step of the split segmentation", unit="s",
-                                 gt=0.0)
-    split_penalty_s: float = _f(0.1, doc="loss a split must save (s of 90 deg disagreement)",
-                                unit="s", ge=0.0)
-    split_snap_max_s: float = _f(0.5, doc="longest move of a split back to its bout's start",
-                                 unit="s", ge=0.0)
+    split_resample_s: float = _f(0.1, doc="window a long movement is cut into for the split "
+                                 "segmentation", unit="s", gt=0.0)
+    split_penalty: float = _f(0.12, doc="loss a split must save (movements of 90 deg "
+                              "disagreement with the steering model)", ge=0.0)
+    split_step_max_s: float = _f(0.6, doc="longest movement taken as one step of the split "
+                                 "segmentation", unit="s", gt=0.0)
     density_bin_mm: float = _f(0.5, doc="bin of the folded trajectory density map", unit="mm",
                                gt=0.0)
     bootstrap_resamples: int = _f(2000, doc="bootstrap resamples of the critical angle CI",

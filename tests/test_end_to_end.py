@@ -61,11 +61,12 @@ def test_clock_recovers_planted_offset_drift_and_dropped_pulses(run):
     # (demo_volume/README.md), so within one rig sample
     assert abs(clock["offset_s"] - truth["offset_s"]) < 5e-3
     # drift: on the 140 s small session the least-squares standard error is ~2 ppm
-    # (README "least-squares standard error ~2 ppm on small"); measured error 3.6 ppm with
-    # SE 2.0 ppm on seed 0, so the check is three standard errors
+    # (README "least-squares standard error ~2 ppm on small"); the interval fit on the edge
+    # brackets does far better (next test), so three least-squares standard errors is loose
     se = _drift_se_ppm(s)
     assert 1.0 < se < 3.0
     assert abs(clock["drift_ppm"] - truth["drift_ppm"]) < 3 * se
+    assert clock["fit"] == "interval"
     assert sorted(clock["dropped_volume_indices"]) == sorted(truth["dropped_trigger_volumes"])
     assert clock["spurious_pulse_indices"] == []
     # Session converts rig times with the same model the align stage applied
@@ -74,11 +75,12 @@ def test_clock_recovers_planted_offset_drift_and_dropped_pulses(run):
     np.testing.assert_allclose(beh["t_s"].to_numpy(), t_model, atol=1e-9)
 
 
-@pytest.mark.xfail(strict=True, reason="drift error 3.6 ppm on seed 0 (SE 2.0 ppm): a "
-                   "least-squares line on 0-5 ms edge lags; a bracketing (interval) fit "
-                   "would be tighter")
-def test_clock_drift_within_3_ppm(run):
-    assert abs(run["session"].clock["drift_ppm"] - run["clock"]["drift_ppm"]) < 3.0
+def test_clock_drift_within_1_ppm(run):
+    # the floor asked of the demo: drift within 1 ppm of the planted 40 ppm. Measured with the
+    # interval (bracketing) fit: +0.21 ppm on small seed 0 (least squares: -3.6), -0.24 on
+    # small seed 1 (-0.61), -0.09 on default seed 0 (-0.62); on simulated 140 s sessions the
+    # interval fit's error is ~0.45 ppm rms (tests/test_align_clocks.py)
+    assert abs(run["session"].clock["drift_ppm"] - run["clock"]["drift_ppm"]) < 1.0
 
 
 # ---- behaviour ------------------------------------------------------------------------------
@@ -110,24 +112,32 @@ def _split_errors_s(run) -> np.ndarray:
 def test_splits_recovered(run):
     err = _split_errors_s(run)
     ibi = _bout_interval_s(run["truth"])
-    # heading changes only in bouts (README), so a split shows in the trajectory at the next
-    # bout at the earliest. Measured on seed 0: 20 of 21 splits found, 52% within one bout
-    # interval (0.75 s), all found within two; the 90%-within-one target is the xfail below
+    # heading changes only in bouts (README): the split is found at the first movement that
+    # steers for the new goal and dated to the middle of the movement before it (the crossing
+    # happens while the animal moves). Measured on seed 0: 20 of 21 planted splits found (one
+    # extra), 81% within one bout interval (0.75 s; seed 1: 88%, default seed 0: 85%), 90%
+    # within two; the 90%-within-one target is the xfail below
     assert np.mean(np.isfinite(err)) >= 0.9
-    assert np.mean(err <= 2 * ibi) >= 0.9
-    assert np.mean(err <= ibi) >= 0.45
+    assert np.mean(err <= 2 * ibi) >= 0.85
+    assert np.mean(err <= ibi) >= 0.75
+    # a split dated to the right bout is within half a bout (bouts last 0.2-0.35 s, README)
+    assert np.median(err[np.isfinite(err)]) < 0.15
 
 
-@pytest.mark.xfail(strict=True, reason="52% of planted splits within one bout interval on "
-                   "seed 0 (errors 0.1-1.5 s); target 90%")
+@pytest.mark.xfail(strict=True, reason="81% of planted splits within one bout interval on "
+                   "seed 0 (17 of 21; seed 1: 88%, default: 85%): most misses are first "
+                   "splits of three-target trials dated a few bouts early (the two goals differ "
+                   "little while the targets are far); target 90%")
 def test_splits_within_one_bout_interval(run):
     assert np.mean(_split_errors_s(run) <= _bout_interval_s(run["truth"])) >= 0.9
 
 
 def test_critical_angle_near_planted(run):
     crit = run["session"].critical_angle
-    # planted critical angle 100 deg (demo_volume/README.md); tolerance 5 deg (brief)
+    # planted critical angle 100 deg (demo_volume/README.md); tolerance 5 deg (brief).
+    # Measured (angle inside the most split brackets): 100.4 deg, 95% CI 94.5-101.2 on seed 0
     assert abs(np.degrees(crit["estimate_rad"]) - 100.0) < 5.0
+    assert crit["ci_low_rad"] <= np.radians(100.0) <= crit["ci_high_rad"]
     assert crit["ci_low_rad"] <= crit["estimate_rad"] <= crit["ci_high_rad"]
 
 
