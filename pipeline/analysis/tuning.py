@@ -237,68 +237,101 @@ def _orth(a):
     return q[:, d > max(d.max(initial=0.0), 1e-300) * 1e-10]
 
 
-def _unique_bases(target_cols, nuisance):
-    """Orthonormal basis of each target's columns after removing every other column.
+def _orth_batch(a):
+    """Orthonormal columns spanning each ``a[i]`` (P, n, m) from its small Gram matrix.
 
-    Batched over permutations with small Gram matrices (all work is stacked ``matmul``):
-    ``target_cols`` (P, n, K, m) and ``nuisance`` (P, n, q) or None; returns (P, n, K, m),
-    zero columns where a target has no variance left.
+    Directions with eigenvalue below ``1e-10`` of the largest become zero columns, so a
+    target with nothing left after the nuisance contributes nothing.
+    """
+    lam, vec = np.linalg.eigh(a.transpose(0, 2, 1) @ a)                   # (P, m), (P, m, m)
+    tol = lam.max(axis=1, keepdims=True, initial=0.0) * 1e-10 + 1e-300
+    inv_sqrt = np.where(lam > tol, 1.0 / np.sqrt(np.where(lam > tol, lam, 1.0)), 0.0)
+    return a @ (vec * inv_sqrt[:, None, :])
+
+
+def _bases(target_cols, q_nuis):
+    """Per permutation: each target's unique basis and the basis of all targets together.
+
+    ``target_cols`` (P, n, K, m) are the (permuted) target columns, ``q_nuis`` (n, q) an
+    orthonormal basis of the never-permuted nuisance (intercept included). Returns
+    ``unique`` (P, n, K, m): target k's columns after removing the nuisance and every other
+    target, orthonormalised; and ``joint`` (P, n, K*m): all targets after the nuisance.
+    Everything is stacked ``matmul`` on small Gram matrices.
     """
     p_, n, k, m = target_cols.shape
-    centred = target_cols - target_cols.mean(axis=1, keepdims=True)
-    nuis = (np.zeros((p_, n, 0)) if nuisance is None
-            else nuisance - nuisance.mean(axis=1, keepdims=True))
-    out = np.zeros((p_, n, k, m))
+    flat = target_cols.reshape(p_, n, k * m)
+    flat = flat - q_nuis[None] @ (q_nuis.T[None] @ flat)                   # (I - H_Z) X
+    joint = _orth_batch(flat)
+    resid = flat.reshape(p_, n, k, m)
+    unique = np.zeros((p_, n, k, m))
     for j in range(k):
-        own = centred[:, :, j]                                           # (P, n, m)
-        others = np.concatenate(
-            [centred[:, :, [i for i in range(k) if i != j]].reshape(p_, n, -1), nuis], axis=2)
-        if others.shape[2]:
+        own = resid[:, :, j]
+        if k > 1:
+            others = resid[:, :, [i for i in range(k) if i != j]].reshape(p_, n, -1)
             gram = others.transpose(0, 2, 1) @ others
             coef = np.linalg.pinv(gram, hermitian=True) @ (others.transpose(0, 2, 1) @ own)
             own = own - others @ coef
-        lam, vec = np.linalg.eigh(own.transpose(0, 2, 1) @ own)          # (P, m), (P, m, m)
-        tol = lam.max(axis=1, keepdims=True) * 1e-10 + 1e-300
-        inv_sqrt = np.where(lam > tol, 1.0 / np.sqrt(np.where(lam > tol, lam, 1.0)), 0.0)
-        out[:, :, j] = own @ (vec * inv_sqrt[:, None, :])
-    return out
+        unique[:, :, j] = _orth_batch(own)
+    return unique, joint
 
 
 @dataclasses.dataclass
 class UniqueVariance:
-    """Per target and cell: unique R^2, its permutation p-value, and the regression bearing."""
+    """Per target and cell: unique R^2 and its p; the joint (any-target) test; alone R^2."""
 
-    unique_r2: np.ndarray       # (n_targets, n_cells)
-    p: np.ndarray               # (n_targets, n_cells)
+    unique_r2: np.ndarray       # (n_targets, n_cells) R^2(full) - R^2(full without k)
+    p: np.ndarray               # (n_targets, n_cells) permutation p of the unique term
     full_r2: np.ndarray         # (n_cells,)
     bearing_rad: np.ndarray     # (n_targets, n_cells) phase of the first-harmonic coefficients
     n_permutations: int
+    joint_r2: np.ndarray | None = None   # (n_cells,) all targets' terms beyond the nuisance
+    p_joint: np.ndarray | None = None    # (n_cells,) its permutation p
+    alone_r2: np.ndarray | None = None   # (n_targets, n_cells) target k alone beyond nuisance
 
 
-def unique_variance_test(activity, bearings_rad, *, perm_index, nuisance=None,
-                         fixed_nuisance=None, n_harmonics=1,
+def unique_variance_test(activity, bearings_rad=None, *, perm_index, nuisance=None,
+                         fixed_nuisance=None, n_harmonics=1, columns=None,
                          block_cells=4096, dtype=np.float32):
-    """Unique variance of each target's bearing and its permutation p-value, for all cells.
+    """Bearing terms of every target against activity, with a calibrated permutation null.
+
+    The model is ``activity ~ intercept + nuisance + sum_k X_k``, where ``X_k`` holds target
+    ``k``'s columns (``cos``/``sin`` of its bearing, or any precomputed ``columns`` such as the
+    indicator-filtered, epoch-gated terms of :mod:`pipeline.analysis.regressors`). Three
+    statistics per cell, all as fractions of the activity's variance:
+
+    * ``joint_r2``: what all targets' columns explain beyond the nuisance, with ``p_joint``;
+    * ``unique_r2``: what target ``k`` explains beyond the nuisance *and* every other target
+      (``R^2(full) - R^2(full without k)``), with ``p``;
+    * ``alone_r2``: what target ``k`` explains beyond the nuisance alone (no p-value; used to
+      say which target a significant cell follows best).
+
+    Null: the target columns' rows are permuted (``perm_index``, e.g. whole trials) while the
+    activity and the nuisance stay together, and every basis is recomputed after the
+    nuisance (permutation of the tested regressors with the nuisance kept fixed; Winkler et
+    al. 2014, table 2, "Draper-Stoneman"). The activity's nuisance residuals are computed once,
+    so the null of all cells and permutations is one GEMM per block of cells: (stacked bases
+    of every permutation)^T x residuals.
 
     Parameters
     ----------
     activity : ndarray of shape (n_samples, n_cells)
-        Activity of cells sampled at one plane's times (the behaviour below must be sampled at
-        the same times).
-    bearings_rad : ndarray of shape (n_samples, n_targets)
+        Activity sampled at the same times as the regressors.
+    bearings_rad : ndarray of shape (n_samples, n_targets), optional
+        Bearings; their ``cos``/``sin`` harmonics are the target columns. Ignored when
+        ``columns`` is given.
     perm_index : ndarray of int, shape (n_permutations, n_samples)
-        Behaviour row order of each permutation (``trial_shuffle_indices`` or
+        Row order of the target columns in each permutation (``trial_shuffle_indices`` or
         ``circular_shift_indices``).
-    nuisance : ndarray of shape (n_samples, n_nuisance), optional
-        Regressors every model keeps (turn command, vigor...); permuted with the bearings.
-    fixed_nuisance : ndarray of shape (n_samples, n_fixed), optional
-        Regressors tied to the activity rows and never permuted, e.g. one indicator per trial:
-        with them only within-trial covariation of activity and bearing counts, so slow
-        between-trial drifts of activity cannot masquerade as tuning under the trial shuffle.
+    nuisance, fixed_nuisance : ndarray of shape (n_samples, q), optional
+        Regressors every model keeps, tied to the activity rows and never permuted (motor terms,
+        epoch levels, one indicator per trial...). Both are treated alike (``fixed_nuisance``
+        is kept for callers of the earlier interface).
     n_harmonics : int, default=1
-        Harmonics of each bearing; 2 captures sharper, von Mises-like tuning.
+        Harmonics of each bearing when ``columns`` is not given.
+    columns : ndarray of shape (n_samples, n_targets, m), optional
+        Precomputed target columns (the first two of each target are its first harmonic).
     block_cells : int, default=4096
-        Cells per GEMM block (memory: ``(n_perm + 1) * n_targets * 2h * block_cells`` floats).
+        Cells per GEMM block (memory ``(n_perm + 1) * 2 * n_targets * m * block_cells``).
     dtype : numpy dtype, default=float32
         Precision of the permutation GEMM.
 
@@ -306,77 +339,99 @@ def unique_variance_test(activity, bearings_rad, *, perm_index, nuisance=None,
     -------
     UniqueVariance
 
+    Raises
+    ------
+    InputError
+        Bearings, columns or permutations whose shapes do not match the activity.
+
     References
     ----------
-    Freedman D, Lane D (1983). A nonstochastic interpretation of reported significance
-    levels. J Bus Econ Stat 1:292-298 (permutation tests in regression).
+    Winkler AM, Ridgway GR, Webster MA, Smith SM, Nichols TE (2014). Permutation inference for
+    the general linear model. NeuroImage 92:381-397. doi:10.1016/j.neuroimage.2014.01.060
+    Draper NR, Stoneman DM (1966). Testing for the inclusion of variables in linear regression
+    by a randomisation technique. Technometrics 8:695-699.
     Phipson B, Smyth GK (2010). Stat Appl Genet Mol Biol 9:39.
     Golub GH, Van Loan CF (2013). Matrix Computations, 4th ed., section 5.2 (QR; the explained
     sum of squares is ``||Q^T y||^2``).
     """
     y_all = np.asarray(activity)
-    b = np.asarray(bearings_rad, dtype=np.float64)
     n = y_all.shape[0]
-    if b.ndim != 2 or b.shape[0] != n:
-        raise InputError(f"bearings_rad: expected shape ({n}, n_targets), got {b.shape}")
+    if columns is None:
+        if bearings_rad is None:
+            raise InputError("unique_variance_test: give bearings_rad or columns")
+        b = np.asarray(bearings_rad, dtype=np.float64)
+        if b.ndim != 2 or b.shape[0] != n:
+            raise InputError(f"bearings_rad: expected shape ({n}, n_targets), got {b.shape}")
+        cols = bearing_design(b, n_harmonics=n_harmonics)
+    else:
+        cols = np.asarray(columns, dtype=np.float64)
+        if cols.ndim != 3 or cols.shape[0] != n:
+            raise InputError(f"columns: expected shape ({n}, n_targets, m), got {cols.shape}")
     perm_index = np.asarray(perm_index)
     if perm_index.ndim != 2 or perm_index.shape[1] != n:
         raise InputError(f"perm_index: expected shape (n_permutations, {n}), got "
                          f"{perm_index.shape}")
-    cols = bearing_design(b, n_harmonics=n_harmonics)
-    nuis = None if nuisance is None else np.asarray(nuisance, dtype=np.float64).reshape(n, -1)
     n_t, m = cols.shape[1], cols.shape[2]
     n_perm = perm_index.shape[0]
+    parts = [np.ones((n, 1))] + [np.asarray(a, dtype=np.float64).reshape(n, -1)
+                                 for a in (nuisance, fixed_nuisance) if a is not None]
+    z_all = np.concatenate(parts, axis=1)
+    q_nuis = _orth(z_all)
     orders = np.vstack([np.arange(n)[None, :], perm_index])
-    stack = np.empty((n, n_perm + 1, n_t, m), dtype=dtype)
-    step = max(1, int(2**24 // (n * n_t * m * 8)))            # ~16 MB of float64 bases per batch
-    fixed = (np.zeros((n, 0)) if fixed_nuisance is None
-             else np.asarray(fixed_nuisance, dtype=np.float64).reshape(n, -1))
-
-    def nuisance_for(order):
-        moved = np.zeros((order.shape[0], n, 0)) if nuis is None else nuis[order]
-        both = np.concatenate([moved, np.broadcast_to(fixed, (order.shape[0], *fixed.shape))],
-                              axis=2)
-        return both if both.shape[2] else None
-
+    width = n_t * m
+    stack = np.empty((n, n_perm + 1, 2, width), dtype=dtype)
+    step = max(1, int(2**24 // (n * width * 8)))              # ~16 MB of float64 per batch
     for a in range(0, n_perm + 1, step):
         order = orders[a: a + step]
-        bases = _unique_bases(cols[order], nuisance_for(order))
-        stack[:, a: a + order.shape[0]] = bases.transpose(1, 0, 2, 3)
-    base0 = _unique_bases(cols[None], nuisance_for(orders[:1]))[0].reshape(n, -1)
+        uniq_b, joint_b = _bases(cols[order], q_nuis)
+        stack[:, a: a + order.shape[0], 0] = uniq_b.reshape(order.shape[0], n, width) \
+            .transpose(1, 0, 2)
+        stack[:, a: a + order.shape[0], 1] = joint_b.transpose(1, 0, 2)
+    uniq0, _ = _bases(cols[None], q_nuis)
+    uniq0 = uniq0[0].reshape(n, width)
+    joint0 = stack[:, 0, 1].astype(np.float64)
     stack2 = stack.reshape(n, -1)
-    full_x = np.concatenate([cols.reshape(n, -1)] + ([] if nuis is None else [nuis]) + [fixed],
-                            axis=1)
-    full_x = full_x - full_x.mean(axis=0)
-    q_full = _orth(full_x)
+    resid_cols = cols.reshape(n, width) - q_nuis @ (q_nuis.T @ cols.reshape(n, width))
+    alone_b = [_orth(resid_cols[:, k * m: (k + 1) * m]) for k in range(n_t)]
+    full_x = np.concatenate([cols.reshape(n, width), z_all], axis=1)
     pinv = np.linalg.pinv(full_x)
     n_cells = y_all.shape[1]
-    q_fixed = _orth(fixed - fixed.mean(axis=0)) if fixed.shape[1] else None
     uniq = np.empty((n_t, n_cells))
     pval = np.empty((n_t, n_cells))
     full_r2 = np.empty(n_cells)
+    joint_r2 = np.empty(n_cells)
+    p_joint = np.empty(n_cells)
+    alone = np.empty((n_t, n_cells))
     bear = np.empty((n_t, n_cells))
     for a in range(0, n_cells, int(block_cells)):
         sl = slice(a, min(a + int(block_cells), n_cells))
         y = np.asarray(y_all[:, sl], dtype=np.float64)
-        y = y - y.mean(axis=0)
-        if q_fixed is not None:             # R^2 relative to what the fixed terms leave
-            y = y - q_fixed @ (q_fixed.T @ y)
-        sst = np.sum(y * y, axis=0)
-        proj = stack2.T @ y.astype(dtype, copy=False)           # the GEMM
+        yc = y - y.mean(axis=0)
+        sst = np.sum(yc * yc, axis=0)
+        r = y - q_nuis @ (q_nuis.T @ y)                         # nuisance residuals, once
+        proj = stack2.T @ r.astype(dtype, copy=False)           # the GEMM
         proj *= proj
-        ss = proj.reshape(n_perm + 1, n_t, m, -1).sum(axis=2)
+        ss = proj.reshape(n_perm + 1, 2, n_t, m, -1).sum(axis=3)  # (P+1, 2, K, cells)
         obs_gemm = ss[0]
         # a tiny relative tolerance so float32 rounding never turns ties into exceedances
         exceed = np.sum(ss[1:] >= obs_gemm[None] * (1 - 1e-5), axis=0)
-        obs = np.sum((base0.T @ y).reshape(n_t, m, -1) ** 2, axis=1)
+        obs_u = np.sum((uniq0.T @ r).reshape(n_t, m, -1) ** 2, axis=1)
+        obs_j = np.sum((joint0.T @ r) ** 2, axis=0)
         with np.errstate(invalid="ignore", divide="ignore"):
-            uniq[:, sl] = np.where(sst > 0, obs / sst, 0.0)
-            full_r2[sl] = np.where(sst > 0, np.sum((q_full.T @ y) ** 2, axis=0) / sst, 0.0)
-        pval[:, sl] = (1.0 + exceed) / (n_perm + 1.0)
-        coef = (pinv @ y)[: n_t * m].reshape(n_t, m, -1)
+            uniq[:, sl] = np.where(sst > 0, obs_u / sst, 0.0)
+            joint_r2[sl] = np.where(sst > 0, obs_j / sst, 0.0)
+            nuis_ss = sst - np.sum(r * r, axis=0)
+            full_r2[sl] = np.where(sst > 0, (nuis_ss + obs_j) / sst, 0.0)
+            for k in range(n_t):
+                alone[k, sl] = np.where(sst > 0, np.sum((alone_b[k].T @ r) ** 2, axis=0) / sst,
+                                        0.0)
+        pval[:, sl] = (1.0 + exceed[0]) / (n_perm + 1.0)
+        # the joint statistic is the same in every target slot: count it once
+        p_joint[sl] = (1.0 + np.sum(ss[1:, 1].sum(axis=1) >= obs_gemm[1].sum(axis=0)[None]
+                                    * (1 - 1e-5), axis=0)) / (n_perm + 1.0)
+        coef = (pinv @ y)[:width].reshape(n_t, m, -1)
         bear[:, sl] = np.arctan2(coef[:, 1], coef[:, 0])
-    return UniqueVariance(uniq, pval, full_r2, bear, n_perm)
+    return UniqueVariance(uniq, pval, full_r2, bear, n_perm, joint_r2, p_joint, alone)
 
 
 def tuned_flags(p, *, q=0.05):
