@@ -9,9 +9,12 @@ Inputs (written by earlier stages):
 ``bouts.parquet`` / ``splits.parquet`` bout and split tables on the rig clock; converted with
                                        the align stage's clock model and matched to volumes
                                        by ``align/plane_times_s``
+``behaviour/bearing_rad``,             bearings and trial ids on the rig's samples with their
+``behaviour.parquet`` (trial),         imaging-clock times (the tuning model is built there)
+``align/behaviour_t_scope_s``
 
 A cell in plane ``z`` is sampled at plane ``z``'s times, so the tuning regressors of that cell
-are column ``z`` of the resampled behaviour. The decoders use all cells together and one target
+are the fine-grid regressors sampled at plane ``z``'s times. The decoders use all cells together and one target
 per volume: the plane average of the turn command.
 """
 
