@@ -203,8 +203,9 @@ def test_tuning_finds_planted_bearing_cells(run):
 
 @pytest.mark.xfail(strict=True, reason="observed false discovery proportion 0.24 and "
                    "sensitivity 0.44 at q = 0.05 on seed 0 (small preset, 300 permutations; "
-                   "default preset, 1000 permutations: 0.37 and 0.80): bearing cells attributed to a correlated "
-                   "other target (the targets' bearings are collinear on ~14 short trials)")
+                   "default preset, 1000 permutations: 0.37 and 0.80): bearing cells "
+                   "attributed to a correlated other target (the targets' bearings are "
+                   "collinear on ~14 short trials)")
 def test_tuning_false_discoveries_controlled(run):
     # Benjamini-Hochberg at q = 0.05 (Benjamini & Hochberg 1995): allow twice the level
     assert _tuning_recovery(run)["fdr"] <= 0.1
