@@ -277,6 +277,9 @@ class TuningSettings:
                              gt=0.0)
     post_window_s: float = _f(30.0, doc="samples up to this long after the split", unit="s",
                               gt=0.0)
+    split_guard_s: float = _f(0.0, doc="samples this soon after a split are left out of the "
+                              "epoch it opens (the indicator still shows the previous epoch)",
+                              unit="s", ge=0.0)
     n_permutations: int = _f(1000, doc="permutations of the null", ge=10)
     null: Literal["trial", "circular"] = _f("trial", doc="trial shuffle or circular shift")
     min_shift_s: float = _f(20.0, doc="minimum circular shift", unit="s", ge=0.0)
@@ -287,10 +290,15 @@ class TuningSettings:
     block_cells: int = _f(4096, doc="cells per task", ge=1)
     n_harmonics: int = _f(1, doc="harmonics of each bearing in the regression (2 = sharper "
                           "tuning)", ge=1, le=4)
-    nuisance: bool = _f(True, doc="add turn and vigor as nuisance regressors")
-    nuisance_lead_s: float = _f(0.0, doc="motor nuisance regressors also at leads up to this "
-                                "(absorbs premotor activity; costs power on short sessions)",
-                                unit="s", ge=0.0)
+    nuisance: bool = _f(True, doc="add motor nuisance regressors (bout onsets per side "
+                        "weighted by |turn| and turn^2, and by vigor; never permuted)")
+    nuisance_leads_s: tuple[float, ...] = _f((-1.0, -0.5, 0.0, 0.5, 1.0, 1.5, 2.0),
+                                             doc="leads of the motor nuisance impulses before "
+                                             "each bout onset (negative = after it)", unit="s")
+    attribution: Literal["best", "unique"] = _f(
+        "best", doc="'best': a cell whose bearing terms (all targets together) are significant "
+        "is tuned to the target that alone explains most; 'unique': tuned to every target "
+        "whose unique term is significant")
     seed: int = _f(0, doc="seed of the null permutations", ge=0)
 
 

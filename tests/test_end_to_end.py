@@ -184,8 +184,14 @@ def _tuning_recovery(run) -> dict[str, float]:
             if ok:
                 d = np.angle(np.exp(1j * (key.loc[k, "preferred_rad"] - r.pref_bearing_rad)))
                 err_deg.append(abs(np.degrees(d)))
+    # the demo plants "post" as after the trial's FIRST split (demo_volume/README.md), so a
+    # post or both cell is also tuned between the first and the second split of a
+    # three-target trial: a flag there is a true key (not required for sensitivity)
+    allowed = set(planted) | {(r.det, TARGETS[int(r.target)], "between")
+                              for r in truth[truth["cell_class"] == "bearing"].itertuples()
+                              if r.epoch in ("post", "both")}
     tuned = tun[tun["tuned"]]
-    false = [k not in planted for k in zip(tuned["cell"], tuned["target"], tuned["epoch"],
+    false = [k not in allowed for k in zip(tuned["cell"], tuned["target"], tuned["epoch"],
                                            strict=True)]
     return {"sensitivity": float(np.mean(found)), "fdr": float(np.mean(false)),
             "n_tuned": len(tuned), "median_err_deg": float(np.median(err_deg)),
@@ -194,16 +200,22 @@ def _tuning_recovery(run) -> dict[str, float]:
 
 def test_tuning_finds_planted_bearing_cells(run):
     r = _tuning_recovery(run)
-    # measured on seed 0 (300 permutations): sensitivity 0.38, preferred bearing median error
-    # ~12 deg with 74% within 20 deg; FDR 0.64 at q = 0.05 (the gap: xfail below)
-    assert r["sensitivity"] >= 0.35
+    # measured on seed 0 (300 permutations; joint indicator-filtered model, motor nuisance
+    # kept fixed, attribution to the best target): sensitivity 0.44, false discovery
+    # proportion 0.24, preferred bearing median error ~12 deg with 81% within 20 deg
+    # (seed 1: 0.48, 0.41, 78%). Before this model: 0.38, 0.64, 74%. The floors are in the
+    # xfail below; these bounds guard against regressions.
+    assert r["sensitivity"] >= 0.38
+    assert r["fdr"] <= 0.35
     assert r["median_err_deg"] <= 20.0
-    assert r["within_20"] >= 0.65
+    assert r["within_20"] >= 0.7
 
 
-@pytest.mark.xfail(strict=True, reason="observed false discovery proportion 0.64 at "
-                   "q = 0.05 on seed 0 (bearing cells flagged for the other target or epoch, "
-                   "premotor and vigor cells); confounds the null does not remove")
+@pytest.mark.xfail(strict=True, reason="observed false discovery proportion 0.24 and "
+                   "sensitivity 0.44 at q = 0.05 on seed 0 (small preset, 300 permutations; "
+                   "default preset, 1000 permutations: 0.37 and 0.80): bearing cells "
+                   "attributed to a correlated other target (the targets' bearings are "
+                   "collinear on ~14 short trials)")
 def test_tuning_false_discoveries_controlled(run):
     # Benjamini-Hochberg at q = 0.05 (Benjamini & Hochberg 1995): allow twice the level
     assert _tuning_recovery(run)["fdr"] <= 0.1
