@@ -9,10 +9,17 @@ import numpy as np
 import pandas as pd
 import pytest
 
+from pipeline.align import ClockModel
 from pipeline.analysis.decode import decode_continuous, lag_samples
-from pipeline.analysis.stages import ALIGN, motor_nuisance, run_decode, run_tuning
+from pipeline.analysis.regressors import (
+    sample_columns,
+    tuning_regressors,
+    uniform_grid,
+    window_epochs,
+)
+from pipeline.analysis.stages import ALIGN, run_decode, run_tuning
 from pipeline.analysis.stats import trial_shuffle_indices
-from pipeline.analysis.tuning import epoch_masks, unique_variance_test
+from pipeline.analysis.tuning import unique_variance_test
 from pipeline.compute import Compute
 from pipeline.config import ComputeSettings, parse_config
 from pipeline.errors import StoreError
@@ -52,6 +59,12 @@ def _prepare(rng, settings):
     prep.write_array(ALIGN["bearing"], bearing)
     plane_times = np.arange(n)[:, None] / RATE_HZ + np.arange(N_PLANES)[None, :] * 0.01
     prep.write_array(ALIGN["plane_times"], plane_times)
+    # the behaviour on the rig's samples (10 Hz here; rig clock = imaging clock)
+    t_rig = np.arange(n * 5) / (5 * RATE_HZ)
+    prep.write_array("align/behaviour_t_scope_s", t_rig)
+    prep.write_array("behaviour/bearing_rad", np.repeat(bearing[:, 0], 5, axis=0))
+    prep.write_table("behaviour.parquet", pd.DataFrame({"t_rig_s": t_rig,
+                                                        "trial": np.repeat(trial, 5)}))
     prep.write_table("cells.parquet", pd.DataFrame({
         "id": np.arange(1, n_cells + 1), "plane": np.arange(n_cells) % N_PLANES,
         "z_um": 0.0, "y_um": 1.0, "x_um": 2.0}))
@@ -116,21 +129,38 @@ def test_tuning_stage_matches_kernel(rng, tmp_path):
     sub.commit()
     table = pd.read_parquet(base.root / "tuning.parquet")
     assert {"cell", "target", "epoch", "preferred_rad", "selectivity", "unique_r2", "p", "q",
-            "tuned", "z_um"} <= set(table.columns)
-    masks = epoch_masks(trial, np.arange(N_TRIALS) * TRIAL_LEN + 30, pre=30, post=30)
-    m = masks["pre"]
+            "p_joint", "q_joint", "tuned", "z_um"} <= set(table.columns)
+    # the kernels run eagerly on plane 0's cells, pre epoch
+    ts, im = settings.tuning, settings.imaging
+    t_rig = np.arange(trial.size * 5) / (5 * RATE_HZ)
+    # rig times through the same clock model as the stage (identity up to rounding)
+    clock = ClockModel.from_dict(base.record("align")["info"]["clock"])
+    split_t = clock.rig_to_scope((np.arange(N_TRIALS) * TRIAL_LEN + 30) / RATE_HZ)
+    split_s = {t: [split_t[t]] for t in range(N_TRIALS)}
+    bouts = base.read_table("bouts.parquet")
+    t_rig, held = uniform_grid(t_rig, np.column_stack([np.repeat(bearing[:, 0], 5, axis=0),
+                                                       np.repeat(trial, 5)]))
+    reg = tuning_regressors(t_rig, held[:, :-1], held[:, -1].astype(int), split_s, rise_s=im.rise_s, decay_s=im.decay_s,
+                            bouts=(clock.rig_to_scope(bouts["onset_rig_s"].to_numpy()),
+                                   bouts["angle_rad"].to_numpy(), np.zeros(len(bouts))),
+                            leads_s=ts.nuisance_leads_s)
+    plane_t = np.arange(trial.size) / RATE_HZ + 0.0
+    ep = window_epochs(plane_t, trial, split_s, pre_s=15.0, post_s=15.0)
+    idx = np.flatnonzero(ep != "")
+    terms = sample_columns(t_rig, reg["terms"], plane_t[idx])
+    e = reg["epochs"].index("pre")
+    nuis = np.concatenate([terms[:, f].reshape(idx.size, -1) for f in range(terms.shape[1])
+                           if f != e] + [sample_columns(t_rig, reg["levels"], plane_t[idx])
+                                         .reshape(idx.size, -1),
+                                         sample_columns(t_rig, reg["motor"], plane_t[idx])],
+                          axis=1)
     rows = np.flatnonzero(np.arange(40) % N_PLANES == 0)
-    parts = motor_nuisance([turn], rate_hz=RATE_HZ, decay_s=settings.imaging.decay_s,
-                           lead_s=settings.tuning.nuisance_lead_s)
-    nuis = np.stack([p[:, 0] for p in parts], axis=1)[m]
-    intercepts = (trial[m][:, None] == np.unique(trial[m])[None, :]).astype(float)
-    INTERCEPTS = settings.tuning.trial_intercepts  # noqa: N806
-    eager = unique_variance_test(act[rows].T[m], bearing[m, 0],
-                                 perm_index=trial_shuffle_indices(trial[m], 499, seed=0),
-                                 nuisance=nuis, fixed_nuisance=intercepts if INTERCEPTS else None)
+    eager = unique_variance_test(act[rows].T[idx], columns=terms[:, e], nuisance=nuis,
+                                 perm_index=trial_shuffle_indices(trial[idx], 499, seed=0))
     got = table.query("epoch == 'pre' and target == 't0'").set_index("cell")
     np.testing.assert_allclose(got.loc[rows + 1, "p"], eager.p[0], atol=1e-12)
-    tuned_cells = set(table.query("tuned and target == 't0'")["cell"])
+    np.testing.assert_allclose(got.loc[rows + 1, "p_joint"], eager.p_joint, atol=1e-12)
+    tuned_cells = set(table.query("tuned and target == 't0' and epoch == 'pre'")["cell"])
     assert set(range(11, 16)) <= tuned_cells
     # the map holds each tuned cell's preferred bearing at its label voxels
     painted = base.read_array("tuning/preferred_rad")[...]
@@ -155,18 +185,20 @@ def test_tuning_stage_needs_trials(rng, tmp_path):
         run_tuning(settings, sub, compute)
 
 
-def test_motor_nuisance_leads_and_indicator_decay() -> None:
-    turn = np.zeros((40, 2))
-    turn[20, 0] = 1.0                       # one leftward turn command, plane 0
-    turn[30, 1] = -2.0                      # one rightward turn, plane 1
-    parts = motor_nuisance([turn], rate_hz=2.0, decay_s=1.0, lead_s=1.0)
-    assert len(parts) == 2 * 3              # left/right parts x leads of 0, 1, 2 volumes
-    left0, left2 = parts[0][:, 0], parts[2][:, 0]
-    # exponential decay with tau = 2 volumes after the event (indicator kernel, common practice)
-    np.testing.assert_allclose(left0[20:23], np.exp(-np.arange(3) / 2.0))
-    assert left0[:20].max() == 0.0
-    assert np.argmax(left2) == 18           # the lead-2 copy peaks two volumes earlier
-    assert parts[3][:, 1].max() == 2.0 and parts[3][:, 0].max() == 0.0
+def test_tuning_stage_needs_behaviour_on_the_rig_clock(tmp_path):
+    settings = _settings(tmp_path)
+    base = Store(settings.session.output)
+    prep = base.stage_store("prep", "x", resumable=False)
+    prep.write_array("traces/dff", np.zeros((2, 10), np.float32))
+    prep.write_array(ALIGN["bearing"], np.zeros((10, 2, 2)))
+    prep.write_array(ALIGN["trial"], np.zeros((10, 2), np.int32))
+    prep.write_array(ALIGN["plane_times"], np.zeros((10, 2)))
+    prep.write_table("cells.parquet", pd.DataFrame({"id": [1, 2], "plane": [0, 1]}))
+    prep.commit()
+    sub = base.stage_store("tuning", "h", resumable=False)
+    with pytest.raises(StoreError, match="align/behaviour_t_scope_s is missing"), \
+            Compute(ComputeSettings(workers=1), quiet=True) as compute:
+        run_tuning(settings, sub, compute)
 
 
 def test_decode_stage_without_trials_warns_about_circular_shifts(rng, tmp_path):

@@ -5,7 +5,12 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from pipeline.behaviour import critical_angle, detect_splits, trajectory_density
+from pipeline.behaviour import (
+    critical_angle,
+    critical_angle_brackets,
+    detect_splits,
+    trajectory_density,
+)
 from pipeline.behaviour.geometry import circular_mean
 
 DT_S = 0.02
@@ -171,16 +176,66 @@ def test_bout_animal_brackets_the_planted_angle(rng):
         trials.append((xy, h, targets))
         times.append(st)
     dt_s = 0.005
-    t0, parts = 0.0, []
+    t0, parts, starts = 0.0, [], []
     for tid, (xy, h, tg) in enumerate(trials):
         n = len(h)
+        starts.append(t0)
         parts.append((t0 + np.arange(n) * dt_s, xy, h, np.full(n, tid),
                       np.tile(tg[:, 0], (n, 1)), np.tile(tg[:, 1], (n, 1))))
         t0 += n * dt_s + 1.0
     t, xy, h, tr, tx, ty = (np.concatenate([p[i] for p in parts]) for i in range(6))
     df = detect_splits(t, xy[:, 0], xy[:, 1], h, tx, ty, tr)
     assert len(df) == 16
-    inside = (df["subtended_prev_rad"] <= crit + 1e-9) & (crit <= df["subtended_rad"] + 1e-9)
+    inside = (df["subtended_prev_rad"] <= crit + 1e-9) & (crit <= df["subtended_post_rad"] + 1e-9)
     assert inside.mean() >= 0.75        # the bracket holds the crossing in most trials
     est = critical_angle(df["subtended_mid_rad"], seed=0)
     assert est["estimate_rad"] == pytest.approx(crit, abs=np.deg2rad(6.0))
+    # planted split times (the crossing, during a movement): the split is dated to the middle
+    # of the movement before the committing one, so within half a bout (0.125 s) when the
+    # right bout is found; bouts start at least 0.7 s apart (0.25 s bout + 0.45 s wait).
+    # Measured on four generator seeds: 63 of 64 within 0.12 s, one a bout early (1.1 s)
+    err = df["split_s"].to_numpy() - (np.array(starts) + np.array(times, dtype=float))[
+        df["trial"].to_numpy()]
+    assert np.mean(np.abs(err) <= 0.7) >= 0.9
+    assert np.median(np.abs(err)) < 0.13
+    assert (df["commit_s"] > df["split_s"]).all()
+    # the least-squares steering gain recovers the planted 0.8 (measured 0.75-0.81)
+    assert df.attrs["steering_gain"] == pytest.approx(0.8, abs=0.1)
+
+
+def test_no_pause_steering_is_cut_into_windows(rng):
+    """An animal steering continuously (no still samples) still gets its split: its movement
+    is cut into ``resample_s`` windows."""
+    targets = np.array([[-5.0, 20.0], [5.0, 20.0]])
+    xy, h, st = simulate(targets, [np.deg2rad(60.0)], [0], rng)
+    t, xy, h, tr, tx, ty = stack([(xy, h, targets)])
+    df = detect_splits(t, xy[:, 0], xy[:, 1], h, tx, ty, tr, resample_s=0.2)
+    assert len(df) == 1 and df["chosen"].iloc[0] == "1"
+    assert df["split_s"].iloc[0] == pytest.approx(st[0], abs=0.45)
+    with_windows = detect_splits(t, xy[:, 0], xy[:, 1], h, tx, ty, tr, resample_s=0.1)
+    assert with_windows["split_s"].iloc[0] == pytest.approx(st[0], abs=0.25)
+
+
+def test_bracket_critical_angle_resists_wrong_brackets(rng):
+    """24 brackets around a planted 1.75 rad plus 6 dated a bout early (both ends below)."""
+    crit = 1.75
+    lo = crit - rng.uniform(0.02, 0.2, 24)
+    hi = crit + rng.uniform(0.02, 0.2, 24)
+    early_hi = crit - rng.uniform(0.05, 0.3, 6)
+    lo_all = np.concatenate((lo, early_hi - rng.uniform(0.05, 0.2, 6)))
+    hi_all = np.concatenate((hi, early_hi))
+    est = critical_angle_brackets(lo_all, hi_all, seed=2)
+    # brute-force reference: a dense numpy grid, the middle of the points inside most brackets
+    grid = np.linspace(1.0, 2.5, 150_001)
+    cov = ((lo_all[:, None] <= grid) & (grid <= hi_all[:, None])).sum(axis=0)
+    top = grid[cov == cov.max()]
+    assert est["estimate_rad"] == pytest.approx(0.5 * (top.min() + top.max()), abs=2e-5)
+    assert lo.max() <= est["estimate_rad"] <= hi.min()      # inside every right bracket
+    assert est["ci_low_rad"] <= crit <= est["ci_high_rad"]
+    assert est["n"] == 30 and est["method"] == "max_bracket_coverage"
+    # the median of the bracket midpoints (numpy.median) is pulled towards the wrong ones
+    mid = np.median(0.5 * (lo_all + hi_all))
+    assert abs(est["estimate_rad"] - crit) < abs(mid - crit)
+    assert np.isnan(critical_angle_brackets([np.nan], [1.0])["estimate_rad"])
+    one = critical_angle_brackets([1.0], [1.2])
+    assert one["estimate_rad"] == pytest.approx(1.1) and np.isnan(one["ci_low_rad"])

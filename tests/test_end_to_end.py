@@ -61,11 +61,12 @@ def test_clock_recovers_planted_offset_drift_and_dropped_pulses(run):
     # (demo_volume/README.md), so within one rig sample
     assert abs(clock["offset_s"] - truth["offset_s"]) < 5e-3
     # drift: on the 140 s small session the least-squares standard error is ~2 ppm
-    # (README "least-squares standard error ~2 ppm on small"); measured error 3.6 ppm with
-    # SE 2.0 ppm on seed 0, so the check is three standard errors
+    # (README "least-squares standard error ~2 ppm on small"); the interval fit on the edge
+    # brackets does far better (next test), so three least-squares standard errors is loose
     se = _drift_se_ppm(s)
     assert 1.0 < se < 3.0
     assert abs(clock["drift_ppm"] - truth["drift_ppm"]) < 3 * se
+    assert clock["fit"] == "interval"
     assert sorted(clock["dropped_volume_indices"]) == sorted(truth["dropped_trigger_volumes"])
     assert clock["spurious_pulse_indices"] == []
     # Session converts rig times with the same model the align stage applied
@@ -74,11 +75,12 @@ def test_clock_recovers_planted_offset_drift_and_dropped_pulses(run):
     np.testing.assert_allclose(beh["t_s"].to_numpy(), t_model, atol=1e-9)
 
 
-@pytest.mark.xfail(strict=True, reason="drift error 3.6 ppm on seed 0 (SE 2.0 ppm): a "
-                   "least-squares line on 0-5 ms edge lags; a bracketing (interval) fit "
-                   "would be tighter")
-def test_clock_drift_within_3_ppm(run):
-    assert abs(run["session"].clock["drift_ppm"] - run["clock"]["drift_ppm"]) < 3.0
+def test_clock_drift_within_1_ppm(run):
+    # the floor asked of the demo: drift within 1 ppm of the planted 40 ppm. Measured with the
+    # interval (bracketing) fit: +0.21 ppm on small seed 0 (least squares: -3.6), -0.24 on
+    # small seed 1 (-0.61), -0.09 on default seed 0 (-0.62); on simulated 140 s sessions the
+    # interval fit's error is ~0.45 ppm rms (tests/test_align_clocks.py)
+    assert abs(run["session"].clock["drift_ppm"] - run["clock"]["drift_ppm"]) < 1.0
 
 
 # ---- behaviour ------------------------------------------------------------------------------
@@ -110,24 +112,32 @@ def _split_errors_s(run) -> np.ndarray:
 def test_splits_recovered(run):
     err = _split_errors_s(run)
     ibi = _bout_interval_s(run["truth"])
-    # heading changes only in bouts (README), so a split shows in the trajectory at the next
-    # bout at the earliest. Measured on seed 0: 20 of 21 splits found, 52% within one bout
-    # interval (0.75 s), all found within two; the 90%-within-one target is the xfail below
+    # heading changes only in bouts (README): the split is found at the first movement that
+    # steers for the new goal and dated to the middle of the movement before it (the crossing
+    # happens while the animal moves). Measured on seed 0: 20 of 21 planted splits found (one
+    # extra), 81% within one bout interval (0.75 s; seed 1: 88%, default seed 0: 85%), 90%
+    # within two; the 90%-within-one target is the xfail below
     assert np.mean(np.isfinite(err)) >= 0.9
-    assert np.mean(err <= 2 * ibi) >= 0.9
-    assert np.mean(err <= ibi) >= 0.45
+    assert np.mean(err <= 2 * ibi) >= 0.85
+    assert np.mean(err <= ibi) >= 0.75
+    # a split dated to the right bout is within half a bout (bouts last 0.2-0.35 s, README)
+    assert np.median(err[np.isfinite(err)]) < 0.15
 
 
-@pytest.mark.xfail(strict=True, reason="52% of planted splits within one bout interval on "
-                   "seed 0 (errors 0.1-1.5 s); target 90%")
+@pytest.mark.xfail(strict=True, reason="81% of planted splits within one bout interval on "
+                   "seed 0 (17 of 21; seed 1: 88%, default: 85%): most misses are first "
+                   "splits of three-target trials dated a few bouts early (the two goals differ "
+                   "little while the targets are far); target 90%")
 def test_splits_within_one_bout_interval(run):
     assert np.mean(_split_errors_s(run) <= _bout_interval_s(run["truth"])) >= 0.9
 
 
 def test_critical_angle_near_planted(run):
     crit = run["session"].critical_angle
-    # planted critical angle 100 deg (demo_volume/README.md); tolerance 5 deg (brief)
+    # planted critical angle 100 deg (demo_volume/README.md); tolerance 5 deg (brief).
+    # Measured (angle inside the most split brackets): 100.4 deg, 95% CI 94.5-101.2 on seed 0
     assert abs(np.degrees(crit["estimate_rad"]) - 100.0) < 5.0
+    assert crit["ci_low_rad"] <= np.radians(100.0) <= crit["ci_high_rad"]
     assert crit["ci_low_rad"] <= crit["estimate_rad"] <= crit["ci_high_rad"]
 
 
@@ -195,8 +205,14 @@ def _tuning_recovery(run) -> dict[str, float]:
             if ok:
                 d = np.angle(np.exp(1j * (key.loc[k, "preferred_rad"] - r.pref_bearing_rad)))
                 err_deg.append(abs(np.degrees(d)))
+    # the demo plants "post" as after the trial's FIRST split (demo_volume/README.md), so a
+    # post or both cell is also tuned between the first and the second split of a
+    # three-target trial: a flag there is a true key (not required for sensitivity)
+    allowed = set(planted) | {(r.det, TARGETS[int(r.target)], "between")
+                              for r in truth[truth["cell_class"] == "bearing"].itertuples()
+                              if r.epoch in ("post", "both")}
     tuned = tun[tun["tuned"]]
-    false = [k not in planted for k in zip(tuned["cell"], tuned["target"], tuned["epoch"],
+    false = [k not in allowed for k in zip(tuned["cell"], tuned["target"], tuned["epoch"],
                                            strict=True)]
     return {"sensitivity": float(np.mean(found)), "fdr": float(np.mean(false)),
             "n_tuned": len(tuned), "median_err_deg": float(np.median(err_deg)),
@@ -205,16 +221,22 @@ def _tuning_recovery(run) -> dict[str, float]:
 
 def test_tuning_finds_planted_bearing_cells(run):
     r = _tuning_recovery(run)
-    # measured on seed 0 (300 permutations): sensitivity 0.38, preferred bearing median error
-    # ~12 deg with 74% within 20 deg; FDR 0.64 at q = 0.05 (the gap: xfail below)
-    assert r["sensitivity"] >= 0.35
+    # measured on seed 0 (300 permutations; joint indicator-filtered model, motor nuisance
+    # kept fixed, attribution to the best target): sensitivity 0.44, false discovery
+    # proportion 0.24, preferred bearing median error ~12 deg with 81% within 20 deg
+    # (seed 1: 0.48, 0.41, 78%). Before this model: 0.38, 0.64, 74%. The floors are in the
+    # xfail below; these bounds guard against regressions.
+    assert r["sensitivity"] >= 0.38
+    assert r["fdr"] <= 0.35
     assert r["median_err_deg"] <= 20.0
-    assert r["within_20"] >= 0.65
+    assert r["within_20"] >= 0.7
 
 
-@pytest.mark.xfail(strict=True, reason="observed false discovery proportion 0.64 at "
-                   "q = 0.05 on seed 0 (bearing cells flagged for the other target or epoch, "
-                   "premotor and vigor cells); confounds the null does not remove")
+@pytest.mark.xfail(strict=True, reason="observed false discovery proportion 0.24 and "
+                   "sensitivity 0.44 at q = 0.05 on seed 0 (small preset, 300 permutations; "
+                   "default preset, 1000 permutations: 0.37 and 0.80): bearing cells "
+                   "attributed to a correlated other target (the targets' bearings are "
+                   "collinear on ~14 short trials)")
 def test_tuning_false_discoveries_controlled(run):
     # Benjamini-Hochberg at q = 0.05 (Benjamini & Hochberg 1995): allow twice the level
     assert _tuning_recovery(run)["fdr"] <= 0.1

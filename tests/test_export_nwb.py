@@ -63,6 +63,9 @@ def test_round_trip_values_shapes_units(exported):
         ev = ophys["Deconvolved"]["events"]
         np.testing.assert_array_equal(
             ev.data[:], zarr.open_array(store.array_path("traces/events"), mode="r")[:].T)
+        den = ophys["DfOverF"]["denoised_dff"]
+        np.testing.assert_array_equal(
+            den.data[:], zarr.open_array(store.array_path("traces/denoised"), mode="r")[:].T)
         # the label image rebuilt from the voxel masks equals the stored one
         ps = ophys["ImageSegmentation"]["cells"]
         rebuilt = np.zeros(TRUTH["shape_zyx"], np.int32)

@@ -98,7 +98,7 @@ def build_synthetic_store(root: Path, rng: np.random.Generator, *,
         s.write_table("cells.parquet", cells)
 
     def traces(s):
-        for kind in ("raw", "neuropil", "corrected", "dff", "events"):
+        for kind in ("raw", "neuropil", "corrected", "dff", "events", "denoised"):
             s.write_array(f"traces/{kind}", rng.random((n_c, n_t)).astype(np.float32),
                           attrs={"unit": "a.u." if kind != "dff" else "1"})
 

@@ -34,6 +34,14 @@ def test_traces_are_lazy_and_labelled(sess):
     np.testing.assert_array_equal(dff.cell(3), raw[2])
 
 
+def test_denoised_traces_round_trip(sess):
+    den = sess.traces("denoised")
+    assert den.name == "denoised" and den.shape == (TRUTH["n_cells"], TRUTH["n_t"])
+    stored = np.asarray(__import__("zarr").open_array(
+        str(sess.root / "session.zarr/traces/denoised"), mode="r")[:])
+    np.testing.assert_array_equal(den.compute(), stored)
+
+
 def test_behaviour_on_imaging_clock_recovers_planted_clock(sess):
     beh = sess.behaviour
     # planted: t_rig = offset + (1 + drift) t_scope with t_scope on a 20 Hz grid from 0

@@ -2,11 +2,24 @@
 
 Numbers measured on the small preset, seed 0 (200 planted nuclei, 280 volumes of 8 x 48 x 64):
 shift RMS error 0.05 voxel; 196 cells detected, 194 of the 200 planted (97 %) matched within
-the median nucleus radius (2.67 um) after undoing the reference offset, 1 false; median
-correlation of dF/F with the planted activity 0.81 over matched cells: below the 0.9 goal, at
-the white-noise ceiling of these traces (0.83: the correlation a perfect estimate would reach
-with the noise measured on them); the README's oracle trace (3 x 3 voxels, true shifts undone)
-reaches 0.74 / 0.64 for the bearing / untuned classes on this preset.
+the median nucleus radius (2.67 um) after undoing the reference offset, 1 false.
+
+Traces, median correlation with the planted activity over matched cells (bearing / premotor /
+vigor / untuned / all):
+
+* ``dff``: 0.79 / 0.95 / 0.94 / 0.74 / 0.81. The loss is white photon noise: after a least
+  squares fit of each trace to its planted activity, the residual's slow part (5 s Gaussian)
+  alone would leave a correlation of 0.97, its fast part alone 0.84. Profile-weighted or
+  variance-weighted (matched-filter) cell weights, neuropil factors 0 or 1 instead of 0.7 and
+  other baseline windows (30, 120 s) or percentiles (8, 50) each move the median by <= 0.006
+  or lower it; a neuropil ring kept 2 um from the cells (2-8 um from the edge; the default is
+  1-6 um, margin 1 um) gains 0.004-0.008 (not the default yet, see pipeline/config.py).
+* ``denoised`` (noise-constrained OASIS): 0.87 / 0.94 / 0.87 / 0.93 / 0.916, above the 0.9
+  goal for the median cell. Seed 1: dff 0.80, denoised 0.918. Default preset seed 0: dff 0.83,
+  denoised 0.946 (every class > 0.9).
+
+The README's oracle trace (3 x 3 voxels, true shifts undone) reaches 0.74 / 0.64 for the
+bearing / untuned classes on this preset.
 """
 
 from __future__ import annotations
@@ -114,10 +127,30 @@ def test_traces_follow_planted_activity(matched):
     dff = np.asarray(store.read_array("traces/dff")[...])[ok]
     activity = np.load(data / "truth" / "activity.npy")[idx[ok]]
     corr = _corr_rows(dff.astype(np.float64), activity.astype(np.float64))
-    assert np.median(corr) > 0.78  # measured 0.81 (goal 0.9 not reached); the oracle 3x3-voxel trace of the README
-    # (truth shifts undone) reaches 0.74 (bearing) / 0.64 (untuned) on this preset
+    # measured 0.81: the raw dF/F stays below the 0.9 goal (photon noise, see the module
+    # docstring); the oracle 3x3-voxel trace of the README reaches 0.74 (bearing) / 0.64
+    # (untuned) on this preset
+    assert np.median(corr) > 0.78
     # per-plane timing: correlation is best at lag 0, not one volume early or late
     late = _corr_rows(dff[:, 1:].astype(np.float64), activity[:, :-1].astype(np.float64))
     early = _corr_rows(dff[:, :-1].astype(np.float64), activity[:, 1:].astype(np.float64))
     assert np.median(corr) > np.median(late) + 0.05
     assert np.median(corr) > np.median(early) + 0.05
+
+
+def test_denoised_traces_reach_the_goal(matched):
+    store, truth, _, ok, idx, _, data, _ = matched
+    den = np.asarray(store.read_array("traces/denoised")[...], np.float64)[ok]
+    dff = np.asarray(store.read_array("traces/dff")[...], np.float64)[ok]
+    activity = np.load(data / "truth" / "activity.npy")[idx[ok]].astype(np.float64)
+    corr = _corr_rows(den, activity)
+    assert np.median(corr) > 0.9  # goal > 0.9 for the median cell (issue 4); measured 0.916
+    classes = truth["cell_class"].to_numpy()[idx[ok]]
+    gain = corr - _corr_rows(dff, activity)
+    # denoising helps most where events are rare (untuned: 0.74 -> 0.93) and costs a little
+    # where they come at nearly every bout (vigor: 0.94 -> 0.87)
+    assert np.median(corr[classes == "untuned"]) > 0.9  # measured 0.926
+    assert np.median(gain[classes == "untuned"]) > 0.1
+    assert np.median(corr[classes == "bearing"]) > 0.85  # measured 0.869
+    assert min(np.median(corr[classes == c]) for c in ("premotor", "vigor")) > 0.85
+    assert (den >= 0).all()  # a non-negative calcium fit

@@ -156,7 +156,7 @@ def test_stages_cells_and_traces_match_kernels(rng, tmp_path):
     from pipeline.config import CellsSettings, ComputeSettings, TracesSettings
     from pipeline.store import Store
     from pipeline.volumes.cells import detect_cells, run_cells
-    from pipeline.volumes.oasis import ar1_gamma, deconvolve_many
+    from pipeline.volumes.oasis import ar1_gamma, deconvolve_many, denoise_many
     from pipeline.volumes.traces import run_traces
 
     vs = (2.0, 1.0, 1.0)
@@ -205,6 +205,10 @@ def test_stages_cells_and_traces_match_kernels(rng, tmp_path):
     np.testing.assert_allclose(dff, ref_dff, rtol=1e-5, atol=1e-6)
     _, ev, _ = deconvolve_many(ref_dff, gamma=ar1_gamma(1.5, 2.0))
     np.testing.assert_allclose(base.read_array("traces/events")[...], ev, rtol=1e-4, atol=1e-5)
+    den, _, _ = denoise_many(ref_dff, gamma=ar1_gamma(1.5, 2.0))
+    np.testing.assert_allclose(base.read_array("traces/denoised")[...], den, rtol=1e-4,
+                               atol=1e-5)
+    assert base.read_array("traces/denoised").attrs["unit"] == "dF/F"
     assert base.read_array("traces/dff").chunks == (3, n_t)
     # the planted gain steps are events in every cell
     assert (np.asarray(base.read_array("traces/events")[...])[:, 3::10] > 0.1).all()

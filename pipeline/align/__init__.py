@@ -6,9 +6,9 @@ from pipeline.align.clocks import (
     PulseMatch,
     fit_clock,
     match_pulses,
-    pulses_from_timestamps,
-    rising_edges,
 )
+from pipeline.align.interval_fit import IntervalLine, interval_line
+from pipeline.align.pulses import edge_brackets, pulses_from_timestamps, rising_edges
 from pipeline.align.resample import (
     count_in_windows,
     nearest_value,
@@ -21,10 +21,13 @@ from pipeline.align.timing import acquisition_rank, plane_period, plane_times
 __all__ = [
     "ClockModel",
     "ClockSegment",
+    "IntervalLine",
     "PulseMatch",
     "acquisition_rank",
     "count_in_windows",
+    "edge_brackets",
     "fit_clock",
+    "interval_line",
     "match_pulses",
     "nearest_value",
     "plane_period",

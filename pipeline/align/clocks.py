@@ -4,85 +4,30 @@ The microscope clock is the session's time base; the rig clock relates to it by
 ``t_rig = offset_s + (1 + drift_ppm * 1e-6) * t_scope`` (DEVELOPERS.md), piecewise when the rig
 clock jumps. Three steps, each a pure function of arrays:
 
-1. :func:`rising_edges` / :func:`pulses_from_timestamps`: pulse times on the rig clock.
+1. :func:`rising_edges` / :func:`edge_brackets` / :func:`pulses_from_timestamps` (in
+   :mod:`pipeline.align.pulses`): pulse times on the rig clock.
 2. :func:`match_pulses`: which pulse belongs to which imaging event (volume or plane start),
    with dropped events and spurious pulses found from the intervals.
-3. :func:`fit_clock`: robust straight-line fit per clock segment -> :class:`ClockModel`.
+3. :func:`fit_clock`: robust straight-line fit per clock segment (refined by an interval fit
+   when the pulses come with their sampling brackets) -> :class:`ClockModel`.
 """
 
 from __future__ import annotations
 
 from dataclasses import asdict, dataclass
-from typing import Any, Literal, NamedTuple
+from typing import Any, NamedTuple
 
 import numba
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 from scipy.ndimage import median_filter
 
+from pipeline.align.interval_fit import interval_line
+from pipeline.align.pulses import edge_brackets, pulses_from_timestamps, rising_edges
 from pipeline.errors import AlignmentError, InputError
 
-__all__ = ["rising_edges", "pulses_from_timestamps", "match_pulses", "PulseMatch",
-           "fit_clock", "ClockModel", "ClockSegment"]
-
-
-def rising_edges(signal: ArrayLike, t_s: ArrayLike | None = None, *, threshold: float = 0.5,
-                 min_interval_s: float = 0.002,
-                 edge_time: Literal["first_high", "midpoint"] = "first_high"
-                 ) -> NDArray[np.float64]:
-    """Rising edges of a digital signal, debounced.
-
-    An edge is a sample above ``threshold`` whose predecessor is not. An edge closer than
-    ``min_interval_s`` to the previous edge (kept or not) is contact bounce and is dropped, so a
-    burst of chatter counts once.
-
-    Parameters
-    ----------
-    signal : array_like of shape (n,)
-        The trigger column (0/1 or a voltage).
-    t_s : array_like of shape (n,), optional
-        Sample times. Without them the result is in sample indices and ``min_interval_s`` is
-        read as samples.
-    threshold : float, default=0.5
-    min_interval_s : float, default=0.002
-    edge_time : {"first_high", "midpoint"}, default="first_high"
-        Time given to an edge: the first high sample, or halfway between it and the last low
-        one (unbiased when the rig marks the first sample after the pulse started).
-
-    Returns
-    -------
-    ndarray of float64 of shape (n_edges,)
-    """
-    s = np.asarray(signal, dtype=np.float64)
-    high = s > threshold
-    idx = np.flatnonzero(high[1:] & ~high[:-1]) + 1
-    if s.size and high[0]:
-        idx = np.concatenate(([0], idx))
-    t = np.arange(s.size, dtype=np.float64) if t_s is None else np.asarray(t_s, np.float64)
-    times = t[idx]
-    if edge_time == "midpoint":
-        times = np.where(idx > 0, 0.5 * (times + t[np.maximum(idx - 1, 0)]), times)
-    keep = np.concatenate(([True], np.diff(t[idx]) >= min_interval_s)) if idx.size else idx > 0
-    return times[keep]
-
-
-def pulses_from_timestamps(times_s: ArrayLike, *, min_interval_s: float = 0.002,
-                           source: str = "timestamps") -> NDArray[np.float64]:
-    """Pulse times from a list of time stamps (sorted; chatter closer than the interval merged).
-
-    Raises
-    ------
-    InputError
-        A time stamp is not finite (names the position in ``source``).
-    """
-    t = np.asarray(times_s, dtype=np.float64).ravel()
-    bad = np.flatnonzero(~np.isfinite(t))
-    if bad.size:
-        raise InputError(f"{source}: pulse time stamp {bad[0] + 1} (1-based) is {float(t[bad[0]])};"
-                         " expected a finite number of seconds")
-    t = np.sort(t)
-    keep = np.concatenate(([True], np.diff(t) >= min_interval_s)) if t.size else t > 0
-    return t[keep]
+__all__ = ["rising_edges", "edge_brackets", "pulses_from_timestamps", "match_pulses",
+           "PulseMatch", "fit_clock", "ClockModel", "ClockSegment"]
 
 
 class PulseMatch(NamedTuple):
@@ -358,6 +303,9 @@ class ClockModel:
     n_pulses: int = 0
     first_event: int = 0
     notes: tuple[str, ...] = ()
+    fit: str = "least_squares"
+    """``"least_squares"`` (robust line on the pulse times) or ``"interval"`` (every segment
+    refitted on its pulses' sampling brackets)."""
 
     def _segment_of_scope(self, t: NDArray[np.float64]) -> NDArray[np.int64]:
         starts = np.array([s.scope_start_s for s in self.segments])
@@ -413,13 +361,19 @@ class ClockModel:
 def fit_clock(pulse_rig_s: ArrayLike, event_scope_s: ArrayLike, *,
               min_match_fraction: float = 0.9, tolerance: float = 0.25,
               first_event: int | None = None, reject_mad: float = 5.0,
-              reject_floor_ms: float = 10.0, jump_threshold_ms: float = 20.0) -> ClockModel:
+              reject_floor_ms: float = 10.0, jump_threshold_ms: float = 20.0,
+              pulse_bracket_rig_s: tuple[ArrayLike, ArrayLike] | None = None) -> ClockModel:
     """Fit the rig clock against the microscope clock from trigger pulses.
 
     Pulses are matched to events (:func:`match_pulses`); each clock segment is fitted by least
     squares with iterative rejection of points further than ``max(reject_mad * 1.4826 * MAD,
     reject_floor_ms)`` from the line; a persistent step in the residuals larger than
     ``jump_threshold_ms`` (a clock jump that kept the pulse grid) splits a segment further.
+    With ``pulse_bracket_rig_s`` (a sampled trigger: each event lies between the last low and
+    the first high sample of its edge, :func:`edge_brackets`) the line of each segment is then
+    refitted on its inliers as the centre of the lines that keep every event inside its bracket
+    (:func:`pipeline.align.interval_fit.interval_line`; least total violation when no line
+    does), which pins the drift far more tightly than least squares on the edge times.
 
     Parameters
     ----------
@@ -435,6 +389,9 @@ def fit_clock(pulse_rig_s: ArrayLike, event_scope_s: ArrayLike, *,
         Outlier rule (the floor keeps rig sampling quantisation, ~1/sqrt(12) sample, inside).
     jump_threshold_ms : float, default=20.0
         Smallest residual step taken as a clock jump.
+    pulse_bracket_rig_s : (low, high) of array_like of shape (n_pulses,), optional
+        Rig-time bracket of each pulse's event (``low < event <= high``); ``low`` may be
+        ``-inf`` (an edge at the first sample: that pulse is left out of the interval fit).
 
     Returns
     -------
@@ -458,6 +415,13 @@ def fit_clock(pulse_rig_s: ArrayLike, event_scope_s: ArrayLike, *,
     match = match_pulses(tp, ts, tolerance=tolerance, first_event=first_event)
     x = ts[match.event_index]
     y = tp[match.pulse_index]
+    brackets = None
+    if pulse_bracket_rig_s is not None:
+        lo_all, hi_all = (np.asarray(v, dtype=np.float64) for v in pulse_bracket_rig_s)
+        if lo_all.shape != tp.shape or hi_all.shape != tp.shape:
+            raise InputError(f"pulse brackets have shapes {lo_all.shape} and {hi_all.shape}; "
+                             f"expected one (low, high) per pulse, {tp.shape}")
+        brackets = (lo_all[match.pulse_index], hi_all[match.pulse_index])
     bounds = [0, *match.breaks.tolist(), x.size]
     segs: list[tuple[int, int]] = []
     for a, b in zip(bounds[:-1], bounds[1:], strict=True):
@@ -465,11 +429,20 @@ def fit_clock(pulse_rig_s: ArrayLike, event_scope_s: ArrayLike, *,
                                    reject_mad=reject_mad, reject_floor_ms=reject_floor_ms))
     inlier = np.zeros(x.size, dtype=bool)
     resid = np.zeros(x.size)
+    method = "least_squares"
     segments: list[ClockSegment] = []
     notes: list[str] = []
     for a, b in segs:
         slope, icpt, ok, r = _robust_line(x[a:b], y[a:b], reject_mad=reject_mad,
                                          reject_floor_ms=reject_floor_ms)
+        if brackets is not None:
+            lo, hi = brackets[0][a:b], brackets[1][a:b]
+            use = ok & np.isfinite(lo) & np.isfinite(hi)
+            if use.sum() >= 2:
+                fit = interval_line(x[a:b][use], lo[use], hi[use], guess=(slope, icpt))
+                slope, icpt = fit.slope, fit.intercept
+                method = "interval"
+                r = y[a:b] - (icpt + slope * x[a:b])
         inlier[a:b], resid[a:b] = ok, r
         segments.append(ClockSegment(float(x[a]), float(x[b - 1]), float(icpt),
                                      float((slope - 1.0) * 1e6), int(ok.sum())))
@@ -494,4 +467,4 @@ def fit_clock(pulse_rig_s: ArrayLike, event_scope_s: ArrayLike, *,
         residual_max_ms=float(np.max(np.abs(r_ms))), matched=n_used,
         dropped_volume_indices=tuple(int(i) for i in dropped),
         spurious_pulse_indices=tuple(int(i) for i in spurious), n_events=int(ts.size),
-        n_pulses=int(tp.size), first_event=match.first_event, notes=tuple(notes))
+        n_pulses=int(tp.size), first_event=match.first_event, notes=tuple(notes), fit=method)

@@ -18,7 +18,8 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
-from pipeline.align.clocks import ClockModel, fit_clock, pulses_from_timestamps, rising_edges
+from pipeline.align.clocks import ClockModel, fit_clock
+from pipeline.align.pulses import edge_brackets, pulses_from_timestamps, rising_edges
 from pipeline.align.resample import resample_behaviour
 from pipeline.align.timing import plane_times
 from pipeline.errors import AlignmentError, InputError
@@ -75,9 +76,15 @@ def align_kernels(table: pd.DataFrame, geometry: dict[str, np.ndarray],
     t_rig = table["t_rig_s"].to_numpy(np.float64)
     if pulse_source is None:
         pulse_source = f"{source}, column {sync.trigger_column!r}"
+    brackets = None
     if pulses_rig_s is None:
-        pulses_rig_s = rising_edges(table[sync.trigger_column].to_numpy(np.float64), t_rig,
-                                    min_interval_s=sync.debounce_s, edge_time=sync.edge_time)
+        trig = table[sync.trigger_column].to_numpy(np.float64)
+        pulses_rig_s = rising_edges(trig, t_rig, min_interval_s=sync.debounce_s,
+                                    edge_time=sync.edge_time)
+        # a sampled edge brackets its pulse: after the last low sample, at or before the first
+        # high one (the interval fit of the clock uses both ends)
+        high, low = edge_brackets(trig, t_rig, min_interval_s=sync.debounce_s)
+        brackets = (low, high)
     if sync.pulse_per == "volume":
         events = acquired_s.min(axis=1)
     else:
@@ -86,7 +93,8 @@ def align_kernels(table: pd.DataFrame, geometry: dict[str, np.ndarray],
     try:
         model = fit_clock(pulses_rig_s, events, min_match_fraction=sync.min_match_fraction,
                           tolerance=sync.match_tolerance,
-                          jump_threshold_ms=sync.jump_threshold_ms)
+                          jump_threshold_ms=sync.jump_threshold_ms,
+                          pulse_bracket_rig_s=brackets)
     except AlignmentError as exc:
         raise AlignmentError(f"{pulse_source}: {exc}") from None
     kept = acquired_s[:, kept_planes]

@@ -9,9 +9,12 @@ Inputs (written by earlier stages):
 ``bouts.parquet`` / ``splits.parquet`` bout and split tables on the rig clock; converted with
                                        the align stage's clock model and matched to volumes
                                        by ``align/plane_times_s``
+``behaviour/bearing_rad``,             bearings and trial ids on the rig's samples with their
+``behaviour.parquet`` (trial),         imaging-clock times (the tuning model is built there)
+``align/behaviour_t_scope_s``
 
 A cell in plane ``z`` is sampled at plane ``z``'s times, so the tuning regressors of that cell
-are column ``z`` of the resampled behaviour. The decoders use all cells together and one target
+are the fine-grid regressors sampled at plane ``z``'s times. The decoders use all cells together and one target
 per volume: the plane average of the turn command.
 """
 
@@ -26,10 +29,15 @@ import zarr
 from pipeline.analysis.bouts import decode_bouts
 from pipeline.analysis.cv import gap_samples
 from pipeline.analysis.decode import decode_continuous, lag_samples
+from pipeline.analysis.regressors import (
+    sample_columns,
+    tuning_regressors,
+    uniform_grid,
+    window_epochs,
+)
 from pipeline.analysis.stats import circular_shift_indices, trial_shuffle_indices
 from pipeline.analysis.tuning import (
     curve_preference,
-    epoch_masks,
     fit_von_mises,
     population_summary,
     tuned_flags,
@@ -86,28 +94,6 @@ def _activity_path(store, feature):
 def _trial_per_volume(store):
     trial = _opt_array(store, ALIGN["trial"])
     return None if trial is None else trial.reshape(trial.shape[0], -1)[:, 0]
-
-
-def _scope_times(store, table, column):
-    """A table column's times on the imaging clock (rig-clock times converted)."""
-    from pipeline.align import ClockModel
-
-    t = table[column].to_numpy(dtype=np.float64)
-    if column.endswith("_rig_s"):
-        info = (store.record("align") or {}).get("info", {})
-        if "clock" not in info:
-            raise StoreError(f"{column}: rig-clock times need the align stage's clock model; "
-                             "re-run `forkmap run --from align`")
-        t = ClockModel.from_dict(info["clock"]).rig_to_scope(t)
-    return t
-
-
-def _volume_index(store, table, column):
-    """Volume index of each row's time (imaging clock; rig-clock times converted)."""
-    plane_times = np.asarray(store.read_array(ALIGN["plane_times"])[...], dtype=np.float64)
-    start = plane_times.min(axis=1)
-    t = _scope_times(store, table, column)
-    return np.clip(np.searchsorted(start, t, side="right") - 1, 0, start.size - 1)
 
 
 def _cell_planes(store, n_cells, n_planes):
@@ -218,138 +204,159 @@ def _write_weight_maps(store, weights, lag_s):
         arr[z] = np.where(lab > 0, lut[np.clip(lab, 0, lut.size - 1)], np.nan)
 
 
-def _target_sets(finite, min_samples):
-    """Which samples test which targets, when some targets are absent (NaN bearing) at times.
-
-    Targets present on every sample of the epoch are tested together on all of them; a target
-    present on only some samples (a third target shown in some trials) is tested with the
-    always-present ones on the samples where it is present. Returns ``(sample mask, targets
-    in the model, targets whose result is kept)`` triples.
-    """
-    always = [k for k in range(finite.shape[1]) if finite[:, k].all()]
-    sets = []
-    if always:
-        sets.append((np.ones(finite.shape[0], bool), always, always))
-    for k in range(finite.shape[1]):
-        if k in always or not finite[:, k].any():
-            continue
-        model = [*always, k]
-        keep = finite[:, model].all(axis=1)
-        if keep.sum() >= min_samples:
-            sets.append((keep, model, [k]))
-    return sets
+def _fine_behaviour(store):
+    """Bearings and trial ids on the rig's samples, with their imaging-clock times."""
+    missing = [n for n in ("align/behaviour_t_scope_s", "behaviour/bearing_rad")
+               if _opt_array(store, n) is None]
+    if missing or not store.has("behaviour.parquet"):
+        what = missing[0] if missing else "behaviour.parquet"
+        raise StoreError(f"{what} is missing: the tuning model needs the behaviour on the rig "
+                         "clock; re-run `forkmap run --from behaviour`")
+    t = np.asarray(store.read_array("align/behaviour_t_scope_s")[...], dtype=np.float64)
+    bearing = np.asarray(store.read_array("behaviour/bearing_rad")[...], dtype=np.float64)
+    trial = store.read_table("behaviour.parquet")["trial"].to_numpy()
+    if not (t.shape[0] == bearing.shape[0] == trial.shape[0]):
+        raise StoreError(f"behaviour/bearing_rad: {bearing.shape[0]} rows, but "
+                         f"align/behaviour_t_scope_s has {t.shape[0]} and behaviour.parquet "
+                         f"{trial.shape[0]}; expected one row per rig sample in all three")
+    return t, bearing.reshape(t.size, -1), trial
 
 
-def motor_nuisance(parts, *, rate_hz, decay_s, lead_s):
-    """Motor regressors as a calcium indicator would see them, at leads up to ``lead_s``.
+def _scope_times(store, table, column):
+    from pipeline.align import ClockModel
 
-    Each (t, z) series (turn command, vigor) is split into its positive and negative parts
-    (leftward and rightward turns drive different cells), shifted earlier by 0 .. ``lead_s``
-    in whole volumes (activity that leads a movement), and convolved with the indicator's
-    exponential decay, so that premotor and vigor-related activity is absorbed by the nuisance
-    terms instead of passing as bearing tuning.
-    """
-    if not parts:
-        return parts
-    kernel = np.exp(-np.arange(0, 5 * decay_s * rate_hz + 1) / (decay_s * rate_hz))
-    out = []
-    for series in parts:
-        for signed in (np.clip(series, 0, None), np.clip(-series, 0, None)):
-            if not signed.any():
-                continue
-            conv = np.apply_along_axis(lambda c: np.convolve(c, kernel)[: c.size], 0, signed)
-            for lead in range(int(round(lead_s * rate_hz)) + 1):
-                shifted = np.zeros_like(conv)
-                shifted[: conv.shape[0] - lead] = conv[lead:]
-                out.append(shifted)
-    return out
+    info = (store.record("align") or {}).get("info", {})
+    if "clock" not in info:
+        raise StoreError(f"{column}: rig-clock times need the align stage's clock model; "
+                         "re-run `forkmap run --from align`")
+    return ClockModel.from_dict(info["clock"]).rig_to_scope(table[column].to_numpy(np.float64))
 
 
-def _tuning_task(rows, activity_path, bearing, nuisance, trial, masks, options):
-    """One block of cells of one plane: every epoch's test and curves (picklable)."""
+def _tuning_task(rows, activity_path, design, options):
+    """One block of cells of one plane: each epoch's joint test and the tuning curves."""
     act = np.asarray(zarr.open_array(activity_path, mode="r").oindex[rows, :]).T
+    idx, epoch_of = design["samples"], design["epoch_of"]
+    y = act[idx]
+    terms, levels, motor = design["terms"], design["levels"], design["motor"]
+    trial = design["trial"]
+    perms = design["perms"]
+    fixed = None
+    if options["trial_intercepts"]:
+        fixed = (trial[:, None] == np.unique(trial)[None, :]).astype(float)
     out = []
-    for e, (epoch, mask) in enumerate(masks.items()):
-        if mask.sum() < 10:
+    for e, epoch in enumerate(design["epochs"]):
+        inside = epoch_of == epoch
+        if np.unique(trial[inside]).size < 3:
             continue
-        epoch_idx = np.flatnonzero(mask)
-        for sub, model, keep in _target_sets(np.isfinite(bearing[epoch_idx]), 10):
-            idx = epoch_idx[sub]
-            if (options["null"] == "trial" and trial is not None
-                    and np.unique(trial[idx]).size > 1):
-                perms = trial_shuffle_indices(trial[idx], options["n_perm"],
-                                              seed=options["seed"] + e)
-            else:
-                perms = circular_shift_indices(idx.size, options["n_perm"],
-                                               min_shift=min(options["min_shift"],
-                                                             idx.size // 2),
-                                               seed=options["seed"] + e)
-            fixed = None
-            if options["trial_intercepts"] and trial is not None:
-                # one indicator per trial of the activity rows (never permuted)
-                fixed = (trial[idx][:, None] == np.unique(trial[idx])[None, :]).astype(float)
-            res = unique_variance_test(act[idx], bearing[np.ix_(idx, model)],
-                                       nuisance=None if nuisance is None else nuisance[idx],
-                                       fixed_nuisance=fixed,
-                                       perm_index=perms, n_harmonics=options["n_harmonics"])
-            for k in keep:
-                j = model.index(k)
-                curves, _, centres = tuning_curves(act[idx], bearing[idx, k],
-                                                   n_bins=options["n_bins"],
-                                                   min_count=options["min_count"])
-                pref, sel = curve_preference(curves, centres)
-                out.append({"epoch": epoch, "target": k, "rows": rows, "preferred_rad": pref,
-                            "selectivity": sel, "unique_r2": res.unique_r2[j], "p": res.p[j],
-                            "regression_rad": res.bearing_rad[j], "curves": curves,
-                            "centres": centres})
+        # targets with terms on this epoch's samples (a third target shown in some trials)
+        keep = [k for k in range(terms.shape[2]) if np.any(terms[inside, e, k] != 0)]
+        if not keep:
+            continue
+        others = [terms[:, f].reshape(idx.size, -1) for f in range(terms.shape[1]) if f != e]
+        nuis = np.concatenate(others + [levels.reshape(idx.size, -1), motor], axis=1)
+        res = unique_variance_test(y, columns=terms[:, e][:, keep], nuisance=nuis,
+                                   fixed_nuisance=fixed, perm_index=perms)
+        best = np.asarray(keep)[np.argmax(res.alone_r2, axis=0)]
+        for j, k in enumerate(keep):
+            curves, _, centres = tuning_curves(y[inside], design["bearing"][inside, k],
+                                               n_bins=options["n_bins"],
+                                               min_count=options["min_count"])
+            pref, sel = curve_preference(curves, centres)
+            out.append({"epoch": epoch, "target": k, "rows": rows, "preferred_rad": pref,
+                        "selectivity": sel, "unique_r2": res.unique_r2[j], "p": res.p[j],
+                        "p_joint": res.p_joint, "joint_r2": res.joint_r2,
+                        "alone_r2": res.alone_r2[j], "best": best == k,
+                        "regression_rad": res.bearing_rad[j], "curves": curves})
     return out
+
+
+def _plane_design(reg, t_fine, z, plane_t, trial_z, bearing_z, split_s, options):
+    """Sample the fine regressors at plane z's times, inside the analysis windows."""
+    epoch_of = window_epochs(plane_t, trial_z, split_s, pre_s=options["pre_s"],
+                             post_s=options["post_s"], guard_s=options["guard_s"])
+    idx = np.flatnonzero(epoch_of != "")
+    if idx.size < 10 or np.unique(trial_z[idx]).size < 3:
+        return None
+    t = plane_t[idx]
+    return {"samples": idx, "epoch_of": epoch_of[idx], "trial": trial_z[idx],
+            "epochs": reg["epochs"], "bearing": bearing_z[idx],
+            "terms": sample_columns(t_fine, reg["terms"], t),
+            "levels": sample_columns(t_fine, reg["levels"], t),
+            "motor": sample_columns(t_fine, reg["motor"], t),
+            "perms": _perms(trial_z[idx], options, seed=options["seed"] + int(z))}
+
+
+def _perms(trial, options, *, seed):
+    if options["null"] == "trial":
+        return trial_shuffle_indices(trial, options["n_perm"], seed=seed)
+    return circular_shift_indices(trial.size, options["n_perm"], seed=seed,
+                                  min_shift=min(options["min_shift"], trial.size // 2))
 
 
 @stage("tuning", requires=("traces", "cells", "align", "behaviour"),
        sections=("imaging", "tuning"), enabled=lambda s: s.tuning.enabled)
 def run_tuning(settings, store, compute):
-    """Per cell, target and epoch: tuning curve, preference, unique variance, p, q, flags."""
+    """Per cell, target and epoch: tuning curve, preference, unique variance, p, q, flags.
+
+    The model of every plane's cells is built once from the behaviour on the rig's samples
+    (:func:`pipeline.analysis.regressors.tuning_regressors`: indicator-filtered, epoch-gated
+    bearing terms and motor terms) and sampled at that plane's times.
+    """
     ts, im = settings.tuning, settings.imaging
-    rate = im.volume_rate_hz
     cells = store.read_table("cells.parquet")
     path = _activity_path(store, ts.feature)
     bearing = np.asarray(store.read_array(ALIGN["bearing"])[...], dtype=np.float64)
     if bearing.ndim == 2:
         bearing = bearing[..., None]
     n_vol, n_planes, n_targets = bearing.shape
-    nuis_parts = [_opt_array(store, ALIGN[k]) for k in ("turn", "vigor")] if ts.nuisance else []
-    nuis_parts = [a.reshape(n_vol, n_planes) for a in nuis_parts if a is not None]
-    nuis_parts = motor_nuisance(nuis_parts, rate_hz=rate, decay_s=im.decay_s,
-                                lead_s=ts.nuisance_lead_s)
-    trial = _trial_per_volume(store)
-    if trial is None:
+    trial_all = _opt_array(store, ALIGN["trial"])
+    if trial_all is None:
         raise StoreError(f"{ALIGN['trial']} is missing: the tuning epochs need trial ids")
+    trial_all = trial_all.reshape(n_vol, -1)
+    plane_times = np.asarray(store.read_array(ALIGN["plane_times"])[...], dtype=np.float64)
+    plane_times = plane_times.reshape(n_vol, -1)
+    exposure = float(store.read_array(ALIGN["plane_times"]).attrs.get("exposure_s", 0.0))
+    t_rig, bearing_rig, trial_rig = _fine_behaviour(store)
+    t_fine, held = uniform_grid(t_rig, np.column_stack([bearing_rig, trial_rig]))
     splits = store.read_table("splits.parquet")
-    split_vol = _volume_index(store, splits, "split_rig_s")
-    per_trial = {t: split_vol[splits["trial"].to_numpy() == t].astype(np.float64)
-                 for t in np.unique(splits["trial"].to_numpy())}
-    masks = epoch_masks(trial, per_trial, pre=round(ts.pre_window_s * rate),
-                        post=round(ts.post_window_s * rate))
-    options = {"null": ts.null, "n_perm": ts.n_permutations, "seed": ts.seed,
-               "min_shift": max(1, round(ts.min_shift_s * rate)), "n_harmonics": ts.n_harmonics,
-               "trial_intercepts": ts.trial_intercepts,
-               "n_bins": ts.n_bins, "min_count": max(1, round(ts.min_occupancy_s * rate))}
+    split_t = _scope_times(store, splits, "split_rig_s")
+    split_s = {t: split_t[splits["trial"].to_numpy() == t]
+               for t in np.unique(splits["trial"].to_numpy())}
+    bouts = None
+    if ts.nuisance and store.has("bouts.parquet"):
+        tab = store.read_table("bouts.parquet")
+        vig = tab["vigor"].to_numpy(np.float64) if "vigor" in tab else np.zeros(len(tab))
+        bouts = (_scope_times(store, tab, "onset_rig_s"),
+                 tab["angle_rad"].to_numpy(np.float64), vig)
+    reg = tuning_regressors(t_fine, held[:, :-1], held[:, -1].astype(np.int64), split_s,
+                            rise_s=im.rise_s, decay_s=im.decay_s, n_harmonics=ts.n_harmonics,
+                            bouts=bouts, leads_s=ts.nuisance_leads_s)
+    options = {"n_perm": ts.n_permutations, "seed": ts.seed, "pre_s": ts.pre_window_s,
+               "null": ts.null, "min_shift": max(1, round(ts.min_shift_s * im.volume_rate_hz)),
+               "post_s": ts.post_window_s, "trial_intercepts": ts.trial_intercepts,
+               "guard_s": ts.split_guard_s,
+               "n_bins": ts.n_bins,
+               "min_count": max(1, round(ts.min_occupancy_s * im.volume_rate_hz))}
     tasks = []
     planes = cells["plane"].to_numpy()
     for z in np.unique(planes):
-        rows = np.flatnonzero(planes == z)
         zc = int(np.clip(z, 0, n_planes - 1))
-        nuis = np.stack([a[:, zc] for a in nuis_parts], axis=1) if nuis_parts else None
+        design = _plane_design(reg, t_fine, zc, plane_times[:, zc] + exposure / 2,
+                               trial_all[:, min(zc, trial_all.shape[1] - 1)],
+                               bearing[:, zc], split_s, options)
+        if design is None:
+            continue
+        rows = np.flatnonzero(planes == z)
         for a in range(0, rows.size, ts.block_cells):
-            tasks.append((rows[a: a + ts.block_cells], bearing[:, zc], nuis))
-    results = compute.map(_tuning_task_star, tasks, path, trial, masks, options, desc="tuning")
+            tasks.append((rows[a: a + ts.block_cells], design))
+    results = compute.map(_tuning_task_star, tasks, path, options, desc="tuning")
     _write_tuning(store, settings, cells, [r for block in results for r in block],
-                  list(masks), n_targets)
+                  reg["epochs"], n_targets)
 
 
-def _tuning_task_star(task, path, trial, masks, options):
-    rows, bearing, nuis = task
-    return _tuning_task(rows, path, bearing, nuis, trial, masks, options)
+def _tuning_task_star(task, path, options):
+    rows, design = task
+    return _tuning_task(rows, path, design, options)
 
 
 def _target_names(settings, n_targets):
@@ -362,7 +369,8 @@ def _write_tuning(store, settings, cells, parts, epochs, n_targets):
     ts = settings.tuning
     names = _target_names(settings, n_targets)
     n_cells = len(cells)
-    fields = ("preferred_rad", "selectivity", "unique_r2", "p", "regression_rad")
+    fields = ("preferred_rad", "selectivity", "unique_r2", "p", "regression_rad", "p_joint",
+              "joint_r2", "alone_r2", "best")
     grid = {f: np.full((n_targets, len(epochs), n_cells), np.nan) for f in fields}
     curves = np.full((n_targets, len(epochs), ts.n_bins, n_cells), np.nan, dtype=np.float32)
     centres = np.linspace(-np.pi, np.pi, ts.n_bins + 1)[:-1] + np.pi / ts.n_bins
@@ -371,7 +379,18 @@ def _write_tuning(store, settings, cells, parts, epochs, n_targets):
         for f in fields:
             grid[f][k, e, part["rows"]] = part[f]
         curves[k, e][:, part["rows"]] = part["curves"]
-    qv, tuned = tuned_flags(grid["p"], q=ts.fdr_q)
+    q_unique = tuned_flags(grid["p"], q=ts.fdr_q)[0]
+    # one joint p per (epoch, cell): BH across cells per epoch
+    p_joint = np.nanmax(np.where(np.isfinite(grid["p_joint"]), grid["p_joint"], -np.inf),
+                        axis=0)
+    p_joint = np.where(np.isfinite(p_joint), p_joint, np.nan)
+    q_joint = np.broadcast_to(tuned_flags(p_joint, q=ts.fdr_q)[0], grid["p"].shape)
+    if ts.attribution == "best":
+        qv = np.where(np.isfinite(grid["p"]), q_joint, np.nan)
+        tuned = np.isfinite(qv) & (qv <= ts.fdr_q) & (grid["best"] == 1)
+    else:
+        qv = q_unique
+        tuned = np.isfinite(qv) & (qv <= ts.fdr_q)
     vm_mu = np.full(grid["p"].shape, np.nan)
     vm_kappa = np.full(grid["p"].shape, np.nan)
     for k, e, i in zip(*np.nonzero(tuned), strict=True):     # fits only where tuned
@@ -383,13 +402,15 @@ def _write_tuning(store, settings, cells, parts, epochs, n_targets):
         **{c: cells[c].to_numpy(dtype=np.float64)[c_idx] for c in ("z_um", "y_um", "x_um")},
         "target": np.asarray(names, dtype=object)[k_idx],
         "epoch": np.asarray(epochs, dtype=object)[e_idx],
-        **{f: grid[f][k_idx, e_idx, c_idx] for f in fields},
+        **{f: grid[f][k_idx, e_idx, c_idx] for f in fields if f != "best"},
+        "q_unique": q_unique[k_idx, e_idx, c_idx], "q_joint": q_joint[k_idx, e_idx, c_idx],
         "q": qv[k_idx, e_idx, c_idx], "tuned": tuned[k_idx, e_idx, c_idx],
         "vm_mu_rad": vm_mu[k_idx, e_idx, c_idx], "vm_kappa": vm_kappa[k_idx, e_idx, c_idx]})
     store.write_table("tuning.parquet", table, metadata={
         "units": {"preferred_rad": "rad", "regression_rad": "rad", "vm_mu_rad": "rad",
                   "z_um": "um", "y_um": "um", "x_um": "um"},
-        "fdr_q": ts.fdr_q, "n_permutations": ts.n_permutations, "null": ts.null})
+        "fdr_q": ts.fdr_q, "n_permutations": ts.n_permutations, "null": ts.null,
+        "attribution": ts.attribution})
     store.write_array("tuning/curves", curves, attrs={"targets": names, "epochs": epochs,
                                                       "bin_centres_rad": centres.tolist()},
                       dimension_names=("target", "epoch", "bin", "cell"))

@@ -4,17 +4,11 @@ Two views of each cell, per target and epoch:
 
 * descriptive: an occupancy-normalised tuning curve against the target's egocentric bearing,
   the preferred bearing and selectivity of its mean resultant vector, and a von Mises fit;
-* inferential: a linear model of the cell's activity on ``cos``/``sin`` of *every* target's
-  bearing together (plus nuisance regressors such as turn and vigor). Target ``k``'s unique
-  explained variance is ``R^2(full) - R^2(full without k)``, which equals
-  ``||W_k^T y||^2 / ||y||^2`` with ``W_k`` an orthonormal basis of target ``k``'s columns
-  after projecting out all other columns. Its null keeps each cell's autocorrelation: the
-  behaviour rows are permuted by whole trials (or circularly shifted) against the activity.
-
-Because ``W_k`` depends only on behaviour, every permutation's bases for every target are
-stacked into one matrix ``B`` and the statistic for all cells and all permutations is the
-column-pair sums of squares of one GEMM ``B^T Y`` per block of cells. This is the whole cost
-of the null, and it runs at BLAS speed (see ``tests/benchmarks/bench_tuning.py``).
+* inferential: a linear model of the cell's activity on the bearing terms of *every* target
+  together plus nuisance terms (:mod:`pipeline.analysis.permtest`; the stage builds the terms
+  with :mod:`pipeline.analysis.regressors`): the joint test of all targets, each target's
+  unique explained variance, and a permutation null (whole trials, or circular shifts) that
+  keeps each cell's autocorrelation, computed as GEMMs.
 """
 
 from __future__ import annotations
@@ -24,6 +18,13 @@ import dataclasses
 import numpy as np
 from scipy.optimize import curve_fit
 
+from pipeline.analysis.permtest import (
+    PermutationBases,
+    UniqueVariance,
+    bearing_design,
+    permutation_bases,
+    unique_variance_test,
+)
 from pipeline.analysis.stats import bh_qvalues, binomial_interval, circular_mean, resultant_length
 from pipeline.errors import InputError
 
@@ -37,6 +38,8 @@ __all__ = [
     "bearing_design",
     "UniqueVariance",
     "unique_variance_test",
+    "PermutationBases",
+    "permutation_bases",
     "tuned_flags",
     "population_summary",
 ]
@@ -215,168 +218,6 @@ def fit_von_mises(centres_rad, values, *, max_kappa=50.0):
     mu = float(np.angle(np.exp(1j * popt[0])))
     return VonMisesFit(mu, float(popt[1]), float(popt[2]), float(popt[3]), float(se[0]),
                        float(se[1]), True)
-
-
-def bearing_design(bearings_rad, *, n_harmonics=1):
-    """Columns ``cos(h b_k), sin(h b_k)`` for every target ``k`` and harmonic ``h``.
-
-    Returns
-    -------
-    ndarray of shape (n_samples, n_targets, 2 * n_harmonics)
-    """
-    b = np.asarray(bearings_rad, dtype=np.float64)
-    cols = []
-    for h in range(1, int(n_harmonics) + 1):
-        cols += [np.cos(h * b), np.sin(h * b)]
-    return np.stack(cols, axis=-1)
-
-
-def _orth(a):
-    q, r = np.linalg.qr(a)
-    d = np.abs(np.diag(r))
-    return q[:, d > max(d.max(initial=0.0), 1e-300) * 1e-10]
-
-
-def _unique_bases(target_cols, nuisance):
-    """Orthonormal basis of each target's columns after removing every other column.
-
-    Batched over permutations with small Gram matrices (all work is stacked ``matmul``):
-    ``target_cols`` (P, n, K, m) and ``nuisance`` (P, n, q) or None; returns (P, n, K, m),
-    zero columns where a target has no variance left.
-    """
-    p_, n, k, m = target_cols.shape
-    centred = target_cols - target_cols.mean(axis=1, keepdims=True)
-    nuis = (np.zeros((p_, n, 0)) if nuisance is None
-            else nuisance - nuisance.mean(axis=1, keepdims=True))
-    out = np.zeros((p_, n, k, m))
-    for j in range(k):
-        own = centred[:, :, j]                                           # (P, n, m)
-        others = np.concatenate(
-            [centred[:, :, [i for i in range(k) if i != j]].reshape(p_, n, -1), nuis], axis=2)
-        if others.shape[2]:
-            gram = others.transpose(0, 2, 1) @ others
-            coef = np.linalg.pinv(gram, hermitian=True) @ (others.transpose(0, 2, 1) @ own)
-            own = own - others @ coef
-        lam, vec = np.linalg.eigh(own.transpose(0, 2, 1) @ own)          # (P, m), (P, m, m)
-        tol = lam.max(axis=1, keepdims=True) * 1e-10 + 1e-300
-        inv_sqrt = np.where(lam > tol, 1.0 / np.sqrt(np.where(lam > tol, lam, 1.0)), 0.0)
-        out[:, :, j] = own @ (vec * inv_sqrt[:, None, :])
-    return out
-
-
-@dataclasses.dataclass
-class UniqueVariance:
-    """Per target and cell: unique R^2, its permutation p-value, and the regression bearing."""
-
-    unique_r2: np.ndarray       # (n_targets, n_cells)
-    p: np.ndarray               # (n_targets, n_cells)
-    full_r2: np.ndarray         # (n_cells,)
-    bearing_rad: np.ndarray     # (n_targets, n_cells) phase of the first-harmonic coefficients
-    n_permutations: int
-
-
-def unique_variance_test(activity, bearings_rad, *, perm_index, nuisance=None,
-                         fixed_nuisance=None, n_harmonics=1,
-                         block_cells=4096, dtype=np.float32):
-    """Unique variance of each target's bearing and its permutation p-value, for all cells.
-
-    Parameters
-    ----------
-    activity : ndarray of shape (n_samples, n_cells)
-        Activity of cells sampled at one plane's times (the behaviour below must be sampled at
-        the same times).
-    bearings_rad : ndarray of shape (n_samples, n_targets)
-    perm_index : ndarray of int, shape (n_permutations, n_samples)
-        Behaviour row order of each permutation (``trial_shuffle_indices`` or
-        ``circular_shift_indices``).
-    nuisance : ndarray of shape (n_samples, n_nuisance), optional
-        Regressors every model keeps (turn command, vigor...); permuted with the bearings.
-    fixed_nuisance : ndarray of shape (n_samples, n_fixed), optional
-        Regressors tied to the activity rows and never permuted, e.g. one indicator per trial:
-        with them only within-trial covariation of activity and bearing counts, so slow
-        between-trial drifts of activity cannot masquerade as tuning under the trial shuffle.
-    n_harmonics : int, default=1
-        Harmonics of each bearing; 2 captures sharper, von Mises-like tuning.
-    block_cells : int, default=4096
-        Cells per GEMM block (memory: ``(n_perm + 1) * n_targets * 2h * block_cells`` floats).
-    dtype : numpy dtype, default=float32
-        Precision of the permutation GEMM.
-
-    Returns
-    -------
-    UniqueVariance
-
-    References
-    ----------
-    Freedman D, Lane D (1983). A nonstochastic interpretation of reported significance
-    levels. J Bus Econ Stat 1:292-298 (permutation tests in regression).
-    Phipson B, Smyth GK (2010). Stat Appl Genet Mol Biol 9:39.
-    Golub GH, Van Loan CF (2013). Matrix Computations, 4th ed., section 5.2 (QR; the explained
-    sum of squares is ``||Q^T y||^2``).
-    """
-    y_all = np.asarray(activity)
-    b = np.asarray(bearings_rad, dtype=np.float64)
-    n = y_all.shape[0]
-    if b.ndim != 2 or b.shape[0] != n:
-        raise InputError(f"bearings_rad: expected shape ({n}, n_targets), got {b.shape}")
-    perm_index = np.asarray(perm_index)
-    if perm_index.ndim != 2 or perm_index.shape[1] != n:
-        raise InputError(f"perm_index: expected shape (n_permutations, {n}), got "
-                         f"{perm_index.shape}")
-    cols = bearing_design(b, n_harmonics=n_harmonics)
-    nuis = None if nuisance is None else np.asarray(nuisance, dtype=np.float64).reshape(n, -1)
-    n_t, m = cols.shape[1], cols.shape[2]
-    n_perm = perm_index.shape[0]
-    orders = np.vstack([np.arange(n)[None, :], perm_index])
-    stack = np.empty((n, n_perm + 1, n_t, m), dtype=dtype)
-    step = max(1, int(2**24 // (n * n_t * m * 8)))            # ~16 MB of float64 bases per batch
-    fixed = (np.zeros((n, 0)) if fixed_nuisance is None
-             else np.asarray(fixed_nuisance, dtype=np.float64).reshape(n, -1))
-
-    def nuisance_for(order):
-        moved = np.zeros((order.shape[0], n, 0)) if nuis is None else nuis[order]
-        both = np.concatenate([moved, np.broadcast_to(fixed, (order.shape[0], *fixed.shape))],
-                              axis=2)
-        return both if both.shape[2] else None
-
-    for a in range(0, n_perm + 1, step):
-        order = orders[a: a + step]
-        bases = _unique_bases(cols[order], nuisance_for(order))
-        stack[:, a: a + order.shape[0]] = bases.transpose(1, 0, 2, 3)
-    base0 = _unique_bases(cols[None], nuisance_for(orders[:1]))[0].reshape(n, -1)
-    stack2 = stack.reshape(n, -1)
-    full_x = np.concatenate([cols.reshape(n, -1)] + ([] if nuis is None else [nuis]) + [fixed],
-                            axis=1)
-    full_x = full_x - full_x.mean(axis=0)
-    q_full = _orth(full_x)
-    pinv = np.linalg.pinv(full_x)
-    n_cells = y_all.shape[1]
-    q_fixed = _orth(fixed - fixed.mean(axis=0)) if fixed.shape[1] else None
-    uniq = np.empty((n_t, n_cells))
-    pval = np.empty((n_t, n_cells))
-    full_r2 = np.empty(n_cells)
-    bear = np.empty((n_t, n_cells))
-    for a in range(0, n_cells, int(block_cells)):
-        sl = slice(a, min(a + int(block_cells), n_cells))
-        y = np.asarray(y_all[:, sl], dtype=np.float64)
-        y = y - y.mean(axis=0)
-        if q_fixed is not None:             # R^2 relative to what the fixed terms leave
-            y = y - q_fixed @ (q_fixed.T @ y)
-        sst = np.sum(y * y, axis=0)
-        proj = stack2.T @ y.astype(dtype, copy=False)           # the GEMM
-        proj *= proj
-        ss = proj.reshape(n_perm + 1, n_t, m, -1).sum(axis=2)
-        obs_gemm = ss[0]
-        # a tiny relative tolerance so float32 rounding never turns ties into exceedances
-        exceed = np.sum(ss[1:] >= obs_gemm[None] * (1 - 1e-5), axis=0)
-        obs = np.sum((base0.T @ y).reshape(n_t, m, -1) ** 2, axis=1)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            uniq[:, sl] = np.where(sst > 0, obs / sst, 0.0)
-            full_r2[sl] = np.where(sst > 0, np.sum((q_full.T @ y) ** 2, axis=0) / sst, 0.0)
-        pval[:, sl] = (1.0 + exceed) / (n_perm + 1.0)
-        coef = (pinv @ y)[: n_t * m].reshape(n_t, m, -1)
-        bear[:, sl] = np.arctan2(coef[:, 1], coef[:, 0])
-    return UniqueVariance(uniq, pval, full_r2, bear, n_perm)
 
 
 def tuned_flags(p, *, q=0.05):

@@ -14,6 +14,7 @@ from pipeline.behaviour.splits import (
     SPLIT_COLUMNS,
     TrajectoryDensity,
     critical_angle,
+    critical_angle_brackets,
     detect_splits,
     trajectory_density,
 )
@@ -28,6 +29,7 @@ __all__ = [
     "TrajectoryDensity",
     "circular_mean",
     "critical_angle",
+    "critical_angle_brackets",
     "detect_splits",
     "detect_turns",
     "egocentric_bearing",

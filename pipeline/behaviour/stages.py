@@ -24,7 +24,11 @@ from pipeline.behaviour.geometry import (
     target_set_geometry,
 )
 from pipeline.behaviour.log import LogSpec, read_log
-from pipeline.behaviour.splits import critical_angle, detect_splits, trajectory_density
+from pipeline.behaviour.splits import (
+    critical_angle_brackets,
+    detect_splits,
+    trajectory_density,
+)
 from pipeline.stages import stage
 
 __all__ = ["run_behaviour", "target_arrays", "behaviour_kernels"]
@@ -57,10 +61,10 @@ def behaviour_kernels(table: pd.DataFrame, settings: Any) -> dict[str, Any]:
                          release_rad_s=b.turn_release_rad_s,
                          min_duration_s=b.bout_min_duration_s, min_gap_s=b.bout_min_gap_s)
     splits = detect_splits(t, x, y, h, tx, ty, trial, target_names=tuple(names),
-                           resample_s=b.split_resample_s, penalty_s=b.split_penalty_s,
-                           snap_max_s=b.split_snap_max_s)
-    crit = critical_angle(splits["subtended_mid_rad"], n_resamples=b.bootstrap_resamples,
-                          seed=b.seed)
+                           resample_s=b.split_resample_s, penalty=b.split_penalty,
+                           step_max_s=b.split_step_max_s)
+    crit = critical_angle_brackets(splits["subtended_prev_rad"], splits["subtended_post_rad"],
+                                   n_resamples=b.bootstrap_resamples, seed=b.seed)
     dens = trajectory_density(x, y, tx, ty, trial, bin_mm=b.density_bin_mm)
     return {"names": names, "bearing_rad": bearing, "distance_mm": target_distance(x, y, tx, ty),
             "subtended_rad": geo.subtended_rad, "bisector_rad": geo.bisector_rad,
@@ -82,11 +86,13 @@ def run_behaviour(settings: Any, store: Any, compute: Any) -> None:
     store.write_table("bouts.parquet", bouts, metadata={"units": {
         "onset_rig_s": "s", "offset_rig_s": "s", "duration_s": "s", "angle_rad": "rad",
         "peak_rad_s": "rad/s"}, "sign": "positive = left (counter-clockwise)"})
-    splits = res["splits"].rename(columns={"split_s": "split_rig_s"})
+    splits = res["splits"].rename(columns={"split_s": "split_rig_s", "commit_s": "commit_rig_s"})
     store.write_table("splits.parquet", splits, metadata={
-        "units": {"split_rig_s": "s", "x_mm": "mm", "y_mm": "mm", "subtended_rad": "rad",
-                  "subtended_prev_rad": "rad", "subtended_mid_rad": "rad"},
-        "critical_angle": res["critical"]})
+        "units": {"split_rig_s": "s", "commit_rig_s": "s", "x_mm": "mm", "y_mm": "mm",
+                  "subtended_rad": "rad", "subtended_prev_rad": "rad",
+                  "subtended_post_rad": "rad", "subtended_mid_rad": "rad"},
+        "critical_angle": res["critical"],
+        "steering_gain": res["splits"].attrs.get("steering_gain")})
     dims2 = ("sample", "target")
     store.write_array("behaviour/bearing_rad", res["bearing_rad"], dimension_names=dims2,
                       attrs={"unit": "rad", "targets": names,

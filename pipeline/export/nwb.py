@@ -45,7 +45,7 @@ __all__ = ["export_nwb", "voxel_masks"]
 log = logging.getLogger("forkmap")
 
 _TRACE_NAMES = {"raw": "raw", "neuropil": "neuropil", "corrected": "neuropil_corrected",
-                "dff": "dff", "events": "events"}
+                "dff": "dff", "events": "events", "denoised": "denoised_dff"}
 
 
 class _ZarrBlocks(GenericDataChunkIterator):
@@ -188,7 +188,7 @@ def _ophys(nwb: Any, session: Session, settings: Any, embed_volumes: bool) -> An
     boxes: dict[str, Any] = {}
     for key, cls, name, kinds in (("fl", Fluorescence, "Fluorescence", {"raw", "neuropil",
                                                                         "corrected"}),
-                                  ("dff", DfOverF, "DfOverF", {"dff"}),
+                                  ("dff", DfOverF, "DfOverF", {"dff", "denoised"}),
                                   ("ev", Fluorescence, "Deconvolved", {"events"})):
         if kinds & set(found):
             boxes[key] = cls(name=name)
@@ -202,7 +202,7 @@ def _ophys(nwb: Any, session: Session, settings: Any, embed_volumes: bool) -> An
             raise StoreError(f"{path}: {arr.shape[0]} traces but {len(ids)} cells in the label "
                              f"image; re-run `forkmap run --from cells`")
         unit = str(arr.attrs.get("unit", "")) or ("n.a." if kind == "dff" else "a.u.")
-        box = boxes["dff" if kind == "dff" else "ev" if kind == "events" else "fl"]
+        box = boxes["dff" if kind in ("dff", "denoised") else "ev" if kind == "events" else "fl"]
         box.create_roi_response_series(
             name=_TRACE_NAMES[kind], data=_ZarrBlocks(arr, (1, 0), buffer_gb=0.1), rois=region,
             unit=unit, description=f"{kind} trace per cell (t, cells); a cell in plane z is "
