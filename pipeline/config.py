@@ -228,8 +228,8 @@ class TracesSettings:
     f0_floor_frac: float = _f(0.1, doc="lower bound on F0 as a fraction of the cell's median",
                               ge=0.0)
     deconvolve: bool = _f(True, doc="OASIS deconvolution into events and a denoised dF/F trace")
-    decay_s: float = _f(1.5, doc="indicator decay time constant (AR(1) model)", unit="s",
-                        gt=0.0)
+    decay_s: float | None = _f(None, doc="AR(1) decay for deconvolution (default: "
+                               "imaging.decay_s, the indicator's)", unit="s", gt=0.0)
     event_min_sigma: float = _f(3.0, doc="smallest event, in noise sigmas", ge=0.0)
     event_lam_sigma: float = _f(0.0, doc="L1 penalty on events, in noise sigmas", ge=0.0)
     block_volumes: int = _f(16, doc="volumes per extraction task", ge=1)

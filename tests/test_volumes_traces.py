@@ -176,7 +176,7 @@ def test_stages_cells_and_traces_match_kernels(rng, tmp_path):
     setup.write_array("motion/mean", reference.astype(np.float32))
     setup.commit()
     settings = SimpleNamespace(
-        imaging=SimpleNamespace(voxel_size_um=vs, volume_rate_hz=2.0),
+        imaging=SimpleNamespace(voxel_size_um=vs, volume_rate_hz=2.0, decay_s=1.5),
         cells=CellsSettings(use_local_correlation=False),
         traces=TracesSettings(block_volumes=16, block_cells=3, baseline_window_s=5.0),
     )
@@ -203,6 +203,7 @@ def test_stages_cells_and_traces_match_kernels(rng, tmp_path):
     np.testing.assert_allclose(base.read_array("traces/corrected")[...], corrected, rtol=1e-5)
     ref_dff, _ = delta_f_over_f(corrected, rate_hz=2.0, window_s=5.0, percentile=20.0)
     np.testing.assert_allclose(dff, ref_dff, rtol=1e-5, atol=1e-6)
+    # traces.decay_s unset: the AR(1) decay is the indicator's (imaging.decay_s = 1.5 here)
     _, ev, _ = deconvolve_many(ref_dff, gamma=ar1_gamma(1.5, 2.0))
     np.testing.assert_allclose(base.read_array("traces/events")[...], ev, rtol=1e-4, atol=1e-5)
     den, _, _ = denoise_many(ref_dff, gamma=ar1_gamma(1.5, 2.0))

@@ -408,7 +408,8 @@ def run_traces(settings, store, compute):
         "percentile": ts.baseline_percentile, "f0_floor": ts.f0_floor,
         "f0_floor_frac": ts.f0_floor_frac, "lam_sigma": ts.event_lam_sigma,
         "s_min_sigma": ts.event_min_sigma,
-        "gamma": ar1_gamma(ts.decay_s, im.volume_rate_hz) if ts.deconvolve else None,
+        "gamma": (ar1_gamma(ts.decay_s or im.decay_s, im.volume_rate_hz) if ts.deconvolve
+                  else None),
     }
     compute.map(_finish_one, list(range(0, n_cells, chunk_c)), n_cells, chunk_c, tmp["raw"],
                 tmp["neuropil"], out_paths, options, desc="traces: dF/F")
