@@ -111,7 +111,7 @@ def _register_group(group: tuple[int, int], volumes_path: str, reference_path: s
         vol = _get(arr, t)
         if prep is not None:
             shifts[i], quality[i] = register_volume(vol, prep, upsample=upsample)
-            acc.update(shift_volume(vol, shifts[i]))
+            acc.update_shifted(vol, shifts[i])
         else:
             acc.update(vol)
     return [shifts], [quality], acc

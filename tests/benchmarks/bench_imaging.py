@@ -83,7 +83,7 @@ def _read_pass(path: str) -> float:
 def _path_task(group: tuple[int, int], vpath: str, ref_path: str, weights_path: str,
                options: dict) -> tuple[np.ndarray, object, np.ndarray, np.ndarray]:
     """One block of our path: register, accumulate summary sums, sample the cells."""
-    from pipeline.volumes.motion import prepare_reference, register_volume, shift_volume
+    from pipeline.volumes.motion import prepare_reference, register_volume
     from pipeline.volumes.sampling import sample_volume
     from pipeline.volumes.summary import SummaryAccumulator
     from pipeline.volumes.traces import _load_weights
@@ -100,14 +100,32 @@ def _path_task(group: tuple[int, int], vpath: str, ref_path: str, weights_path: 
     for i, t in enumerate(range(*group)):
         vol = np.asarray(arr[t])
         shifts[i] = register_volume(vol, prep, upsample=UPSAMPLE)[0]
-        acc.update(shift_volume(vol, shifts[i]))
+        acc.update_shifted(vol, shifts[i])
         cell[:, i], neu[:, i] = sample_volume(vol, shifts[i], w)
     return shifts, acc, cell, neu
 
 
+def _merge(total: tuple, part: tuple) -> tuple:
+    """Fold one block's results into the running total, in volume order (as the stage)."""
+    return (total[0] + [part[0]], total[1].merge(part[1]), total[2] + [part[2]],
+            total[3] + [part[3]])
+
+
+def _first(part: tuple) -> tuple:
+    return [part[0]], part[1], [part[2]], [part[3]]
+
+
+def _path_task_listed(group: tuple[int, int], *args: object) -> tuple:
+    return _first(_path_task(group, *args))  # type: ignore[arg-type]
+
+
 def our_path(vpath: str, labels: np.ndarray, work: Path, *, scheduler: str = "threads",
              workers: int = 1, block: int = 8) -> tuple[float, dict]:
-    """Run our imaging path; returns (seconds, outputs)."""
+    """Run our imaging path; returns (seconds, outputs).
+
+    The blocks are folded in volume order as they finish (``Compute.reduce``, as the motion
+    stage does), so memory holds about one summary accumulator per running task.
+    """
     from pipeline.compute import Compute
     from pipeline.config import ComputeSettings
     from pipeline.volumes.motion_stage import volume_groups
@@ -121,23 +139,23 @@ def our_path(vpath: str, labels: np.ndarray, work: Path, *, scheduler: str = "th
     zarr.create_array(ref_path, shape=ref.shape, dtype="float32", overwrite=True)[...] = ref
     weights_path = str(work / "weights")
     _save_weights(weights_path, build_weights(labels, voxel_size_um=VOXEL_UM))
-    options = {"highpass_sigma_vox": (0.0, 6.0, 6.0)}
+    # the motion stage's defaults: estimation on 2 x 2 binned planes, high-pass in y and x
+    options = {"highpass_sigma_vox": (0.0, 6.0, 6.0), "bin_yx": 2}
     groups = volume_groups(0, n, block=block, n_tasks=16)  # as the motion stage cuts them
     compute = Compute(ComputeSettings(scheduler=scheduler, workers=workers), quiet=True)
     try:
-        compute.map(_path_task, groups[:1], vpath, ref_path, weights_path, options)  # warm up
+        # warm up (imports, compiled kernels) on every worker, outside the timing
+        compute.map(_path_task, [(0, 1)] * compute.n_workers, vpath, ref_path, weights_path,
+                    options)
         t0 = time.perf_counter()
-        res = compute.map(_path_task, groups, vpath, ref_path, weights_path, options)
-        acc = res[0][1]
-        for r in res[1:]:
-            acc.merge(r[1])
+        shifts, acc, cell, neu = compute.reduce(_path_task_listed, groups, vpath, ref_path,
+                                                weights_path, options, merge=_merge)
         mean, corr = acc.finalize()
         seconds = time.perf_counter() - t0
     finally:
         compute.close()
-    out = {"shifts": np.concatenate([r[0] for r in res]), "mean": mean, "corr": corr,
-           "cell": np.concatenate([r[2] for r in res], axis=1),
-           "neuropil": np.concatenate([r[3] for r in res], axis=1)}
+    out = {"shifts": np.concatenate(shifts), "mean": mean, "corr": corr,
+           "cell": np.concatenate(cell, axis=1), "neuropil": np.concatenate(neu, axis=1)}
     return seconds, out
 
 
