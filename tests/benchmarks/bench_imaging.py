@@ -86,12 +86,12 @@ def _path_task(group: tuple[int, int], vpath: str, ref_path: str, weights_path: 
     from pipeline.volumes.motion import prepare_reference, register_volume
     from pipeline.volumes.sampling import sample_volume
     from pipeline.volumes.summary import SummaryAccumulator
-    from pipeline.volumes.traces import _load_weights
+    from pipeline.volumes.traces import _cached_weights
 
     arr = zarr.open_array(vpath, mode="r")
     reference = np.asarray(zarr.open_array(ref_path, mode="r")[...])
     prep = prepare_reference(reference, **options)
-    w = _load_weights(weights_path)
+    w = _cached_weights(weights_path)
     acc = SummaryAccumulator.empty(reference.shape, offset=reference)
     n = group[1] - group[0]
     shifts = np.zeros((n, 3))
@@ -107,8 +107,8 @@ def _path_task(group: tuple[int, int], vpath: str, ref_path: str, weights_path: 
 
 def _merge(total: tuple, part: tuple) -> tuple:
     """Fold one block's results into the running total, in volume order (as the stage)."""
-    return (total[0] + [part[0]], total[1].merge(part[1]), total[2] + [part[2]],
-            total[3] + [part[3]])
+    return (total[0] + part[0], total[1].merge(part[1]), total[2] + part[2],
+            total[3] + part[3])
 
 
 def _first(part: tuple) -> tuple:
