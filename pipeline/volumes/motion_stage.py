@@ -30,7 +30,6 @@ from pipeline.volumes.motion import (
     prepare_reference,
     register_volume,
     registered_sum,
-    shift_volume,
 )
 from pipeline.volumes.motion_flags import MotionFlags, flag_motion
 from pipeline.volumes.summary import SummaryAccumulator
