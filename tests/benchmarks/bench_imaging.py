@@ -87,8 +87,11 @@ def _read_pass(path: str) -> float:
 
 
 def _path_task(group: tuple[int, int], vpath: str, ref_path: str, weights_path: str,
-               options: dict) -> tuple[np.ndarray, object, np.ndarray, np.ndarray]:
-    """One block of our path: register, accumulate summary sums, sample the cells."""
+               options: dict, spill_dir: str | None = None
+               ) -> tuple[np.ndarray, object, np.ndarray, np.ndarray]:
+    """One block of our path: register, accumulate summary sums, sample the cells (the sums
+    are written under ``spill_dir`` and returned as a handle when given, as the stage does
+    on process workers)."""
     from pipeline.volumes.motion import prepare_reference, register_volume
     from pipeline.volumes.sampling import sample_volume
     from pipeline.volumes.summary import SummaryAccumulator
@@ -108,17 +111,25 @@ def _path_task(group: tuple[int, int], vpath: str, ref_path: str, weights_path: 
         shifts[i] = register_volume(vol, prep, upsample=UPSAMPLE)[0]
         acc.update_shifted(vol, shifts[i])
         cell[:, i], neu[:, i] = sample_volume(vol, shifts[i], w)
+    if spill_dir is not None:
+        return shifts, acc.spill(f"{spill_dir}/sums_{group[0]}.npz"), cell, neu
     return shifts, acc, cell, neu
 
 
-def _merge(total: tuple, part: tuple) -> tuple:
+def _merge(total: tuple, part: tuple, *, offset: np.ndarray) -> tuple:
     """Fold one block's results into the running total, in volume order (as the stage)."""
-    return (total[0] + part[0], total[1].merge(part[1]), total[2] + part[2],
-            total[3] + part[3])
+    from pipeline.volumes.motion_stage import _merge_groups
+
+    _, _, acc = _merge_groups(([], [], total[1]), ([], [], part[1]), offset=offset)
+    return (total[0] + part[0], acc, total[2] + part[2], total[3] + part[3])
 
 
 def _first(part: tuple) -> tuple:
     return [part[0]], part[1], [part[2]], [part[3]]
+
+
+def _warm(vpath: str, ref_path: str, weights_path: str, options: dict) -> None:
+    _path_task((0, 1), vpath, ref_path, weights_path, options)
 
 
 def _path_task_listed(group: tuple[int, int], *args: object) -> tuple:
@@ -132,9 +143,11 @@ def our_path(vpath: str, labels: np.ndarray, work: Path, *, scheduler: str = "th
     The blocks are folded in volume order as they finish (``Compute.reduce``, as the motion
     stage does), so memory holds about one summary accumulator per running task.
     """
+    from functools import partial
+
     from pipeline.compute import Compute
     from pipeline.config import ComputeSettings
-    from pipeline.volumes.motion_stage import volume_groups
+    from pipeline.volumes.motion_stage import _resolve, spill_directory, volume_groups
     from pipeline.volumes.sampling import build_weights
     from pipeline.volumes.traces import _save_weights
 
@@ -150,13 +163,17 @@ def our_path(vpath: str, labels: np.ndarray, work: Path, *, scheduler: str = "th
     groups = volume_groups(0, n, block=block, n_tasks=16)  # as the motion stage cuts them
     compute = Compute(ComputeSettings(scheduler=scheduler, workers=workers), quiet=True)
     try:
-        # warm up (imports, compiled kernels) on every worker, outside the timing
-        compute.map(_path_task, [(0, 1)] * compute.n_workers, vpath, ref_path, weights_path,
-                    options)
+        # warm up (imports, compiled kernels, cached weights) on every worker, untimed
+        if compute.client is not None:
+            compute.client.run(_warm, vpath, ref_path, weights_path, options)
+        else:
+            _warm(vpath, ref_path, weights_path, options)
+        spill = spill_directory(compute, work / "sums")
         t0 = time.perf_counter()
         shifts, acc, cell, neu = compute.reduce(_path_task_listed, groups, vpath, ref_path,
-                                                weights_path, options, merge=_merge)
-        mean, corr = acc.finalize()
+                                                weights_path, options, spill,
+                                                merge=partial(_merge, offset=ref))
+        mean, corr = _resolve(acc, ref, 26).finalize()
         seconds = time.perf_counter() - t0
     finally:
         compute.close()
@@ -170,6 +187,8 @@ def stage_passes(vpath: str, labels: np.ndarray, work: Path, *, reference_count:
     """Seconds of the motion stage's passes and the traces stage's sampling pass, run with
     the stages' own task functions, partitions and defaults (1 worker), on the first
     ``n_vol`` volumes (all by default)."""
+    from functools import partial
+
     from pipeline.compute import Compute
     from pipeline.config import ComputeSettings, MotionSettings, TracesSettings
     from pipeline.volumes.motion_stage import (
@@ -207,9 +226,10 @@ def stage_passes(vpath: str, labels: np.ndarray, work: Path, *, reference_count:
         sums = compute.map(_block_registered_sum, ref_groups, vpath, ref_path, opts, m.upsample)
         ref_arr[...] = (np.sum(sums, axis=0) / min(n, reference_count)).astype(np.float32)
         groups = volume_groups(0, n, block=m.block_volumes, n_tasks=n)
+        reference = np.asarray(ref_arr[...])
         shift_blocks, _q, acc = compute.reduce(
             _register_group, groups, vpath, ref_path, opts, m.upsample, m.neighbourhood, True,
-            merge=_merge_groups)
+            merge=partial(_merge_groups, offset=reference, neighbourhood=m.neighbourhood))
         acc.finalize()
         zarr.create_array(shifts_path, shape=(n, 3), dtype="float64",
                           overwrite=True)[...] = np.concatenate(shift_blocks)
@@ -282,10 +302,27 @@ def _rss_child(n_vol: int, shape: tuple[int, int, int]) -> None:
     """Subprocess body: make a session of n_vol volumes, run our path, print peak RSS."""
     with tempfile.TemporaryDirectory() as tmp:
         vpath, _, labels = make_session(Path(tmp), n_vol, shape)
-        base = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+        base = _peak_rss_kib()
         our_path(vpath, labels, Path(tmp))
-        peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss  # KiB on Linux
+        peak = _peak_rss_kib()
     print(json.dumps({"peak_mb": peak / 1024, "after_setup_mb": base / 1024}))
+
+
+def _peak_rss_kib() -> float:
+    """Peak resident set of this process in KiB: ``VmHWM`` from /proc/self/status on Linux.
+
+    Not ``getrusage(RUSAGE_SELF).ru_maxrss``: Linux carries the parent's resident set at
+    fork into the child's ``ru_maxrss`` across exec, so a child started by a big parent (the
+    naive baseline's per-cell masks take ~4 GB) reported the parent's size, not its own.
+    """
+    try:
+        with open("/proc/self/status") as fh:
+            for line in fh:
+                if line.startswith("VmHWM:"):
+                    return float(line.split()[1])
+    except OSError:
+        pass
+    return float(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)
 
 
 def _rss(n_vol: int, shape: tuple[int, int, int]) -> float:
@@ -354,7 +391,7 @@ def run(quick: bool) -> list[dict]:
         "name": f"imaging path peak RSS, {2 * n_vol} vs {n_vol} volumes",
         "figure": rss_2, "baseline": rss_1, "ratio": growth, "goal": 1.15,
         "passed": bool(growth <= 1.15 and rss_2 < 2048), "unit": "MB",
-        "note": "each run in its own subprocess (getrusage RUSAGE_SELF ru_maxrss)",
+        "note": "each run in its own subprocess (peak resident set, VmHWM)",
     })
     return rows
 
