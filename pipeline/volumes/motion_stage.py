@@ -119,7 +119,7 @@ def _register_group(group: tuple[int, int], volumes_path: str, reference_path: s
         else:
             acc.update(vol)
     if spill_dir is not None:
-        return [shifts], [quality], acc.spill(str(Path(spill_dir) / f"sums_{group[0]}.npz"))
+        return [shifts], [quality], acc.spill(str(Path(spill_dir) / f"sums_{group[0]}"))
     return [shifts], [quality], acc
 
 

@@ -391,30 +391,35 @@ class SummaryAccumulator:
     _SUMS = ("sum_x", "sum_xx", "sum_xn", "sum_nn")
 
     def spill(self, path: str) -> SpilledSums:
-        """Write the sums to ``path`` (an uncompressed ``.npz``) and return a small handle.
+        """Write the sums as ``<path>.<name>.npy`` files and return a small handle.
 
         A task on a process worker or a cluster returns the handle instead of the arrays: the
-        client reads the file from the shared file system instead of receiving four float64
+        client reads the files from the shared file system instead of receiving four float64
         volumes through the scheduler's messages (measured on the loaded 2-core machine: 16
-        results of 64 MB took 9.5 s through a LocalCluster, 1.1 s as small results).
+        results of 64 MB took 9.5 s through a LocalCluster, 1.1 s as small results). Plain
+        ``.npy`` files, not a zip archive, so that neither side computes checksums and the
+        reader adds straight from the memory-mapped file.
         """
-        np.savez(path, **{name: getattr(self, name) for name in self._SUMS})
+        for name in self._SUMS:
+            np.save(f"{path}.{name}.npy", getattr(self, name))
         return SpilledSums(path=str(path), n=self.n, shape=tuple(self.shape),
                            neighbourhood=self.neighbourhood)
 
     def merge_spilled(self, spilled: SpilledSums) -> SummaryAccumulator:
         """:meth:`merge` the sums written by :meth:`spill` (same offset assumed) and delete
-        the file; returns self."""
+        the files; returns self."""
         if spilled.shape != self.shape or spilled.neighbourhood != self.neighbourhood:
             raise ConfigError(f"cannot merge accumulators of shape {spilled.shape} / "
                               f"neighbourhood {spilled.neighbourhood} into shape {self.shape} "
                               f"/ neighbourhood {self.neighbourhood}")
         import os
 
-        with np.load(spilled.path) as f:
-            for name in self._SUMS:
-                getattr(self, name).__iadd__(f[name])
-        os.remove(spilled.path)
+        for name in self._SUMS:
+            file = f"{spilled.path}.{name}.npy"
+            part = np.load(file, mmap_mode="r")
+            getattr(self, name).__iadd__(part)
+            del part
+            os.remove(file)
         self.n += spilled.n
         return self
 

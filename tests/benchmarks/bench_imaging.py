@@ -118,7 +118,7 @@ def _path_task(group: tuple[int, int], vpath: str, ref_path: str, weights_path: 
         acc.update_shifted(vol, shifts[i])
         cell[:, i], neu[:, i] = sample_volume(vol, shifts[i], w)
     if spill_dir is not None:
-        return shifts, acc.spill(f"{spill_dir}/sums_{group[0]}.npz"), cell, neu
+        return shifts, acc.spill(f"{spill_dir}/sums_{group[0]}"), cell, neu
     return shifts, acc, cell, neu
 
 
