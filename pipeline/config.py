@@ -177,13 +177,17 @@ class MotionSettings:
     reference_start: int = _f(0, doc="first volume of the reference block", ge=0)
     reference_count: int = _f(50, doc="volumes averaged for the reference", ge=1)
     upsample: int = _f(20, doc="sub-voxel refinement factor (1/upsample voxel)", ge=1)
-    bin_yx: int = _f(1, doc="bin y and x by this factor for estimation", ge=1)
+    bin_yx: int = _f(2, doc="bin y and x by this factor for estimation (2: ~4x fewer FFT "
+                     "voxels; demo shift error 0.04-0.06 voxel RMS against 0.03-0.05 "
+                     "unbinned)", ge=1)
     highpass_sigma_um: float = _f(10.0, doc="high-pass before correlation (0 = off)", unit="um",
                                   ge=0.0)
     max_shift_um: float = _f(20.0, doc="shifts larger than this are flagged", unit="um", gt=0.0)
     z_drift_fraction: float = _f(0.5, doc="flag |dz| above this fraction of a plane", gt=0.0)
     quality_mad: float = _f(5.0, doc="flag quality below median - k * MAD", gt=0.0)
-    block_volumes: int = _f(8, doc="volumes per task", ge=1)
+    block_volumes: int = _f(32, doc="volumes per registration task (each task reads the "
+                            "reference and returns a summary accumulator of 4 float64 "
+                            "volumes, so small tasks pay that overhead often)", ge=1)
     tukey_alpha: float = _f(0.25, doc="taper fraction of the analysis window", ge=0.0, le=1.0)
     neighbourhood: Literal[26, 6, 8] = _f(
         26, doc="local-correlation neighbours: 26 (cube), 6 (faces), 8 (same plane)")

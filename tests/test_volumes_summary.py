@@ -136,3 +136,54 @@ def test_neighbour_mean_matches_box_filter(rng: np.random.Generator, shape, neig
     expected = np.where(count > 0, total / np.maximum(count, 1), 0.0)
     np.testing.assert_allclose(neighbour_mean(v, neighbourhood=neighbourhood), expected,
                                rtol=0, atol=1e-9)
+
+
+@pytest.mark.parametrize("neighbourhood", [26, 6, 8])
+def test_update_shifted_equals_registered_copy(rng: np.random.Generator,
+                                               neighbourhood: int) -> None:
+    import scipy.ndimage as ndi
+
+    from pipeline.volumes.motion import shift_volume
+
+    shape = (4, 9, 11)
+    vols = rng.integers(100, 4000, (5, *shape)).astype(np.uint16)
+    shifts = [(0.3, -1.7, 2.25), (0.0, 0.0, 0.0), (-0.5, 3.0, 0.0), (1.2, -0.01, -7.9),
+              (9.0, 0.5, 0.5)]
+    offset = vols[0].astype(np.float32)
+    fused = SummaryAccumulator.empty(shape, neighbourhood=neighbourhood, offset=offset)
+    copied = SummaryAccumulator.empty(shape, neighbourhood=neighbourhood, offset=offset)
+    scipy_acc = SummaryAccumulator.empty(shape, neighbourhood=neighbourhood, offset=offset)
+    for v, s in zip(vols, shifts, strict=True):
+        fused.update_shifted(v, s)
+        copied.update(shift_volume(v, s))
+        # reference: scipy.ndimage.shift, order 1, edges extended (registering applies -shift)
+        scipy_acc.update(ndi.shift(v.astype(np.float32), np.negative(s), order=1,
+                                   mode="nearest", prefilter=False))
+    for name in ("sum_x", "sum_xx", "sum_xn", "sum_nn"):
+        np.testing.assert_array_equal(getattr(fused, name), getattr(copied, name))
+    for a, b in zip(fused.finalize(), scipy_acc.finalize(), strict=True):
+        np.testing.assert_allclose(a, b, rtol=1e-5, atol=1e-4)
+    with pytest.raises(ConfigError, match=r"shift_vox = .*expected 3 finite values"):
+        fused.update_shifted(vols[0], (0.0, np.nan, 0.0))
+
+
+def test_spilled_sums_merge_like_the_arrays(rng: np.random.Generator, tmp_path) -> None:
+    stack = rng.normal(500, 20, (12, *SHAPE))
+    offset = stack[:3].mean(0)
+    blocks = []
+    for lo, hi in ((0, 5), (5, 12)):
+        acc = SummaryAccumulator.empty(SHAPE, offset=offset)
+        for v in stack[lo:hi]:
+            acc.update(v)
+        blocks.append(acc)
+    direct = SummaryAccumulator.empty(SHAPE, offset=offset).merge(blocks[0]).merge(blocks[1])
+    handle = blocks[1].spill(str(tmp_path / "sums"))
+    assert handle.n == 7 and len(list(tmp_path.glob("sums.*.npy"))) == 4
+    via_file = SummaryAccumulator.empty(SHAPE, offset=offset).merge(blocks[0])
+    via_file.merge_spilled(handle)
+    assert via_file.n == direct.n == 12 and not list(tmp_path.glob("sums.*"))
+    for name in ("sum_x", "sum_xx", "sum_xn", "sum_nn"):
+        np.testing.assert_array_equal(getattr(via_file, name), getattr(direct, name))
+    other = SummaryAccumulator.empty((2, 4, 5)).spill(str(tmp_path / "other"))
+    with pytest.raises(ConfigError, match=r"cannot merge accumulators of shape \(2, 4, 5\)"):
+        via_file.merge_spilled(other)

