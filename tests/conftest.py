@@ -22,3 +22,13 @@ def demo_small_data(tmp_path_factory: pytest.TempPathFactory):
     out = tmp_path_factory.mktemp("demo-small")
     generate(out, preset="small", seed=0, layout="both")
     return out
+
+
+@pytest.fixture(scope="session")
+def demo_default_data(tmp_path_factory: pytest.TempPathFactory):
+    """The default demo preset (what ``make demo`` runs on), generated once per test session."""
+    from demo_volume.generate import generate
+
+    out = tmp_path_factory.mktemp("demo-default")
+    generate(out, preset="default", seed=0, layout="per-volume")
+    return out

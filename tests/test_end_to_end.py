@@ -17,6 +17,7 @@ import numpy as np
 import pandas as pd
 import pytest
 from demo_session import demo_config
+from demo_truth import bout_interval_s, split_errors_s, tuning_recovery
 from scipy.spatial import cKDTree
 
 from pipeline.cli import main
@@ -26,7 +27,6 @@ pytestmark = pytest.mark.slow
 
 #: reduced-cost analysis settings for the test run (replacing the demo config's values)
 REDUCED = {"decode": {"n_null": 20, "n_null_bouts": 2}, "tuning": {"n_permutations": 300}}
-TARGETS = ("t0", "t1", "t2")
 
 
 @pytest.fixture(scope="module")
@@ -38,11 +38,6 @@ def run(demo_small_data: Path, tmp_path_factory: pytest.TempPathFactory):
     return {"cfg": cfg, "out": folder / "out", "truth": truth,
             "session": Session.open(folder / "out"),
             "clock": json.loads((truth / "clock.json").read_text())}
-
-
-def _bout_interval_s(truth: Path) -> float:
-    bouts = pd.read_parquet(truth / "bouts.parquet")
-    return float(np.median(np.diff(bouts["onset_rig_s"].to_numpy())))
 
 
 # ---- clock ----------------------------------------------------------------------------------
@@ -101,17 +96,9 @@ def test_bouts_match_planted_bouts(run):
     assert {"onset_s", "offset_s"} <= set(found.columns)            # imaging-clock twins
 
 
-def _split_errors_s(run) -> np.ndarray:
-    truth = pd.read_parquet(run["truth"] / "trials.parquet")
-    found = run["session"].splits
-    m = truth.merge(found.assign(split_index=found["level"] - 1), on=["trial", "split_index"],
-                    how="left")
-    return (m["split_rig_s"] - m["t_split_rig_s"]).abs().to_numpy()   # NaN: not found
-
-
 def test_splits_recovered(run):
-    err = _split_errors_s(run)
-    ibi = _bout_interval_s(run["truth"])
+    err = split_errors_s(run)
+    ibi = bout_interval_s(run["truth"])
     # heading changes only in bouts (README): the split is found at the first movement that
     # steers for the new goal and dated to the middle of the movement before it (the crossing
     # happens while the animal moves). Measured on seed 0: 20 of 21 planted splits found (one
@@ -129,7 +116,7 @@ def test_splits_recovered(run):
                    "splits of three-target trials dated a few bouts early (the two goals differ "
                    "little while the targets are far); target 90%")
 def test_splits_within_one_bout_interval(run):
-    assert np.mean(_split_errors_s(run) <= _bout_interval_s(run["truth"])) >= 0.9
+    assert np.mean(split_errors_s(run) <= bout_interval_s(run["truth"])) >= 0.9
 
 
 def test_critical_angle_near_planted(run):
@@ -186,41 +173,8 @@ def test_decoder_weight_map_separates_premotor_sides(run):
 
 
 # ---- tuning ---------------------------------------------------------------------------------
-def _tuning_recovery(run) -> dict[str, float]:
-    s = run["session"]
-    truth = pd.read_parquet(run["truth"] / "cells.parquet")
-    cells, tun = s.cells, s.tuning
-    pos = ["z_um", "y_um", "x_um"]
-    dist, idx = cKDTree(cells[pos].to_numpy()).query(truth[pos].to_numpy())
-    # nearest detected cell within 3 um (half a nucleus diameter, README radius 2.2-3.2 um)
-    truth["det"] = np.where(dist < 3.0, cells["id"].to_numpy()[idx], -1)
-    key = tun.set_index(["cell", "target", "epoch"])
-    planted, found, err_deg = set(), [], []
-    for r in truth[truth["cell_class"] == "bearing"].itertuples():
-        for ep in (("pre", "post") if r.epoch == "both" else (r.epoch,)):
-            k = (r.det, TARGETS[int(r.target)], ep)
-            planted.add(k)
-            ok = k in key.index and bool(key.loc[k, "tuned"])
-            found.append(ok)
-            if ok:
-                d = np.angle(np.exp(1j * (key.loc[k, "preferred_rad"] - r.pref_bearing_rad)))
-                err_deg.append(abs(np.degrees(d)))
-    # the demo plants "post" as after the trial's FIRST split (demo_volume/README.md), so a
-    # post or both cell is also tuned between the first and the second split of a
-    # three-target trial: a flag there is a true key (not required for sensitivity)
-    allowed = set(planted) | {(r.det, TARGETS[int(r.target)], "between")
-                              for r in truth[truth["cell_class"] == "bearing"].itertuples()
-                              if r.epoch in ("post", "both")}
-    tuned = tun[tun["tuned"]]
-    false = [k not in allowed for k in zip(tuned["cell"], tuned["target"], tuned["epoch"],
-                                           strict=True)]
-    return {"sensitivity": float(np.mean(found)), "fdr": float(np.mean(false)),
-            "n_tuned": len(tuned), "median_err_deg": float(np.median(err_deg)),
-            "within_20": float(np.mean(np.asarray(err_deg) <= 20.0))}
-
-
 def test_tuning_finds_planted_bearing_cells(run):
-    r = _tuning_recovery(run)
+    r = tuning_recovery(run)
     # measured on seed 0 (300 permutations; joint indicator-filtered model, motor nuisance
     # kept fixed, attribution to the best target): sensitivity 0.44, false discovery
     # proportion 0.24, preferred bearing median error ~12 deg with 81% within 20 deg
@@ -239,7 +193,7 @@ def test_tuning_finds_planted_bearing_cells(run):
                    "collinear on ~14 short trials)")
 def test_tuning_false_discoveries_controlled(run):
     # Benjamini-Hochberg at q = 0.05 (Benjamini & Hochberg 1995): allow twice the level
-    assert _tuning_recovery(run)["fdr"] <= 0.1
+    assert tuning_recovery(run)["fdr"] <= 0.1
 
 
 # ---- report, Session API, NWB ---------------------------------------------------------------

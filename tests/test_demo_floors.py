@@ -1,0 +1,111 @@
+"""The issues' floors on the demo as ``make demo`` runs it: default preset, ``configs/demo.toml``.
+
+The small preset (``test_end_to_end.py``) keeps the suite quick and checks every output; this
+module runs the full demo config once (about 1.5 min of pipeline on 2 cores) and checks the
+recovery floors that the issues state "on the demo". Floors not reached are strict xfails with
+the measured figure in the reason, so they turn into failures the day they are reached.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pytest
+from demo_session import demo_config
+from demo_truth import (
+    bout_interval_s,
+    corr_rows,
+    match_cells,
+    shift_rms_vox,
+    split_errors_s,
+    tuning_recovery,
+)
+
+from pipeline.cli import main
+from pipeline.session import Session
+
+pytestmark = pytest.mark.slow
+
+
+@pytest.fixture(scope="module")
+def run(demo_default_data: Path, tmp_path_factory: pytest.TempPathFactory):
+    folder = tmp_path_factory.mktemp("floors")
+    cfg = demo_config(demo_default_data, folder / "out", folder)   # configs/demo.toml as is
+    assert main(["--quiet", "run", str(cfg)]) == 0
+    truth = demo_default_data / "truth"
+    return {"out": folder / "out", "truth": truth, "session": Session.open(folder / "out"),
+            "clock": json.loads((truth / "clock.json").read_text())}
+
+
+# ---- imaging (issue 4) ----------------------------------------------------------------------
+def test_motion_and_cells(run):
+    store, truth = run["session"].store, run["truth"]
+    assert shift_rms_vox(store, truth) < 0.1            # floor < 0.1 voxel; measured 0.038
+    planted, cells, ok, idx, _ = match_cells(store, truth)
+    assert len(set(idx[ok])) / len(planted) > 0.95      # floor > 95 %; measured 98.7 %
+    assert (~ok).mean() < 0.05                          # floor < 5 % false; measured 0
+
+
+def test_denoised_trace_correlation(run):
+    store, truth = run["session"].store, run["truth"]
+    _, _, ok, idx, _ = match_cells(store, truth)
+    activity = np.load(truth / "activity.npy")[idx[ok]].astype(np.float64)
+    den = np.asarray(store.read_array("traces/denoised")[...], np.float64)[ok]
+    dff = np.asarray(store.read_array("traces/dff")[...], np.float64)[ok]
+    # floor > 0.9 for the median cell; measured 0.946 denoised, 0.833 for dF/F itself
+    assert np.median(corr_rows(den, activity)) > 0.9
+    assert np.median(corr_rows(dff, activity)) > 0.8
+
+
+# ---- clock and behaviour (issue 5) ----------------------------------------------------------
+def test_clock(run):
+    clock, truth = run["session"].clock, run["clock"]
+    assert abs(clock["drift_ppm"] - truth["drift_ppm"]) < 1.0     # floor 1 ppm; measured 0.09
+    assert abs(clock["offset_s"] - truth["offset_s"]) < 5e-3       # one rig sample (5 ms)
+    assert sorted(clock["dropped_volume_indices"]) == sorted(truth["dropped_trigger_volumes"])
+
+
+def test_critical_angle(run):
+    crit = run["session"].critical_angle
+    # planted 100 deg (demo_volume/README.md), floor within 5 deg; measured 100.5 (98.7-100.7)
+    assert abs(np.degrees(crit["estimate_rad"]) - 100.0) < 5.0
+    assert crit["ci_low_rad"] <= np.radians(100.0) <= crit["ci_high_rad"]
+
+
+@pytest.mark.xfail(strict=True, reason="85% of the 26 planted splits within one bout interval "
+                   "(96% within two): first splits of three-target trials dated a few bouts "
+                   "early; floor 90%")
+def test_splits_within_one_bout_interval(run):
+    assert np.mean(split_errors_s(run) <= bout_interval_s(run["truth"])) >= 0.9
+
+
+# ---- decoding (issue 6) ---------------------------------------------------------------------
+def test_decoders(run):
+    doc = run["session"].decoding_summary
+    cells = pd.read_parquet(run["truth"] / "cells.parquet")
+    lead_s = float(cells.loc[cells["cell_class"] == "premotor", "lead_s"].median())
+    # planted premotor lead recovered within one volume; measured best lag -1.5 s
+    assert abs(doc["turn_r2"]["best_lag_s"] + lead_s) <= 1.0 / doc["rate_hz"] + 1e-9
+    assert max(doc["bout_auc"]["mean"]) > 0.8                   # floor 0.8; measured 0.943
+
+
+# ---- tuning (issue 7) -----------------------------------------------------------------------
+def test_tuning_preferred_bearing(run):
+    r = tuning_recovery(run)
+    # measured: sensitivity 0.83, false discovery proportion 0.14, median error 8 deg, 87 %
+    # of found keys within 20 deg
+    assert r["median_err_deg"] <= 20.0
+    assert r["within_20"] >= 0.8
+    assert r["sensitivity"] >= 0.75 and r["fdr"] <= 0.2          # regression guards
+
+
+@pytest.mark.xfail(strict=True, reason="sensitivity 0.83 at a false discovery proportion of "
+                   "0.14 at q = 0.05 (1000 permutations): bearing cells attributed to a "
+                   "correlated other target, and pre cells flagged between splits where the "
+                   "first split is dated early; floors 0.9 and 0.05")
+def test_tuning_floors(run):
+    r = tuning_recovery(run)
+    assert r["sensitivity"] >= 0.9 and r["fdr"] <= 0.05
