@@ -103,9 +103,9 @@ def test_tuning_preferred_bearing(run):
 
 
 @pytest.mark.xfail(strict=True, reason="sensitivity 0.83 at a false discovery proportion of "
-                   "0.14 at q = 0.05 (1000 permutations): bearing cells attributed to a "
-                   "correlated other target, and pre cells flagged between splits where the "
-                   "first split is dated early; floors 0.9 and 0.05")
+                   "0.14 at q = 0.05 (1000 permutations; 46 false of 332 flagged keys: 17 on "
+                   "untuned cells, 16 bearing cells attributed to a correlated other target, 10 "
+                   "premotor or vigor cells); floors 0.9 and 0.05")
 def test_tuning_floors(run):
     r = tuning_recovery(run)
     assert r["sensitivity"] >= 0.9 and r["fdr"] <= 0.05
