@@ -8,21 +8,11 @@ over a generic route (which would need the search too).
 
 from __future__ import annotations
 
-import time
-
 import numpy as np
 from scipy.optimize import nnls
 
 from pipeline.volumes.oasis import ar1_gamma, denoise_many
-
-
-def _best(fn, repeat):
-    best = np.inf
-    for _ in range(repeat):
-        t0 = time.perf_counter()
-        fn()
-        best = min(best, time.perf_counter() - t0)
-    return best
+from tests.benchmarks.timing import best_of
 
 
 def bench_denoise(quick):
@@ -34,14 +24,14 @@ def bench_denoise(quick):
     y = s_true @ k.T + rng.normal(0, 0.1, (n_cells, n_t))
     denoise_many(y[:1], gamma=gamma)  # compile
     _, _, lam = denoise_many(y, gamma=gamma)
-    ours = _best(lambda: denoise_many(y, gamma=gamma), 3)
+    ours = best_of(lambda: denoise_many(y, gamma=gamma), 3)
     shift = np.linalg.solve(k.T, np.ones(n_t))
 
     def baseline():
         for i in range(n_cells):
             nnls(k, y[i] - lam[i] * shift, maxiter=50 * n_t)
 
-    base = _best(baseline, 1)
+    base = best_of(baseline, 1)
     ratio = base / ours
     return {"name": "denoised trace (constrained OASIS) vs one scipy nnls per cell",
             "figure": ours, "baseline": base, "ratio": ratio, "goal": 10.0,

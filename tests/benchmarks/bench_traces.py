@@ -5,22 +5,12 @@ Each entry measures ours and its baseline in the same process.
 
 from __future__ import annotations
 
-import time
-
 import numpy as np
 import scipy.ndimage as ndi
 
 from pipeline.volumes.sampling import build_weights, sample_volume
 from pipeline.volumes.traces import running_percentile
-
-
-def _best(fn, repeat):
-    best = np.inf
-    for _ in range(repeat):
-        t0 = time.perf_counter()
-        fn()
-        best = min(best, time.perf_counter() - t0)
-    return best
+from tests.benchmarks.timing import best_of
 
 
 def _entry(name, ours_s, base_s, goal, note):
@@ -34,8 +24,8 @@ def bench_percentile(quick):
     n_cells, n_t, window = (200, 3000, 120) if quick else (2000, 3000, 120)
     x = rng.normal(size=(n_cells, n_t))
     running_percentile(x[:2], 20.0, window)  # compile outside the timing
-    ours = _best(lambda: running_percentile(x, 20.0, window), 3)
-    base = _best(lambda: ndi.percentile_filter(x, 20.0, size=(1, window)), 1)
+    ours = best_of(lambda: running_percentile(x, 20.0, window), 3)
+    base = best_of(lambda: ndi.percentile_filter(x, 20.0, size=(1, window)), 1)
     same = np.allclose(running_percentile(x[:20], 20.0, window),
                        ndi.percentile_filter(x[:20], 20.0, size=(1, window)))
     return _entry("running percentile vs scipy.ndimage.percentile_filter", ours, base, 10.0,
@@ -63,8 +53,8 @@ def bench_sampling(quick):
         # per-cell means of the registered copy (vectorised over cells by scipy.ndimage.mean)
         return ndi.mean(reg, lab, index=np.arange(1, n_cells + 1))
 
-    ours = _best(lambda: sample_volume(vol, shift, w), 3)
-    base = _best(baseline, 2)
+    ours = best_of(lambda: sample_volume(vol, shift, w), 3)
+    base = best_of(baseline, 2)
     close = np.allclose(sample_volume(vol, shift, w)[0], baseline(), rtol=1e-4)
     return _entry("shifted sampling vs registered copy + per-cell means", ours, base, 2.0,
                   f"{shape} volume, {n_cells} cells (+ rings in ours only); equal: {close}")
