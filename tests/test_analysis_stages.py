@@ -171,32 +171,23 @@ def test_tuning_stage_matches_kernel(rng, tmp_path):
     assert np.all(np.isnan(t0_pre[labels == 0]))
 
 
-def test_tuning_stage_needs_trials(rng, tmp_path):
+@pytest.mark.parametrize(("present", "missing"), [
+    ((), "align/trial"),                                   # no trials: nothing to permute
+    (("trial", "plane_times"), "align/behaviour_t_scope_s"),  # no behaviour on the rig clock
+])
+def test_tuning_stage_names_the_missing_input(tmp_path, present, missing):
     settings = _settings(tmp_path)
     base = Store(settings.session.output)
     prep = base.stage_store("prep", "x", resumable=False)
     prep.write_array("traces/dff", np.zeros((2, 10), np.float32))
     prep.write_array(ALIGN["bearing"], np.zeros((10, 2, 2)))
+    extra = {"trial": np.zeros((10, 2), np.int32), "plane_times": np.zeros((10, 2))}
+    for name in present:
+        prep.write_array(ALIGN[name], extra[name])
     prep.write_table("cells.parquet", pd.DataFrame({"id": [1, 2], "plane": [0, 1]}))
     prep.commit()
     sub = base.stage_store("tuning", "h", resumable=False)
-    with pytest.raises(StoreError, match="align/trial is missing"), \
-            Compute(ComputeSettings(workers=1), quiet=True) as compute:
-        run_tuning(settings, sub, compute)
-
-
-def test_tuning_stage_needs_behaviour_on_the_rig_clock(tmp_path):
-    settings = _settings(tmp_path)
-    base = Store(settings.session.output)
-    prep = base.stage_store("prep", "x", resumable=False)
-    prep.write_array("traces/dff", np.zeros((2, 10), np.float32))
-    prep.write_array(ALIGN["bearing"], np.zeros((10, 2, 2)))
-    prep.write_array(ALIGN["trial"], np.zeros((10, 2), np.int32))
-    prep.write_array(ALIGN["plane_times"], np.zeros((10, 2)))
-    prep.write_table("cells.parquet", pd.DataFrame({"id": [1, 2], "plane": [0, 1]}))
-    prep.commit()
-    sub = base.stage_store("tuning", "h", resumable=False)
-    with pytest.raises(StoreError, match="align/behaviour_t_scope_s is missing"), \
+    with pytest.raises(StoreError, match=f"{missing} is missing"), \
             Compute(ComputeSettings(workers=1), quiet=True) as compute:
         run_tuning(settings, sub, compute)
 
