@@ -192,16 +192,26 @@ def _write_weight_maps(store, weights, lag_s):
     except StoreError:
         store.warn("no cell label volume: decoder weight map not painted")
         return
-    ids = cells["id"].to_numpy()
-    lut = np.full(int(max(ids.max(initial=0), 0)) + 1, np.nan, dtype=np.float32)
-    lut[ids] = weights
+    lut = _cell_lut(cells["id"].to_numpy(), weights)
     arr = store.create_array("decode/weight_map", shape=tuple(labels.shape), dtype="float32",
                              chunks=(1, *labels.shape[1:]), fill_value=np.nan,
                              dimension_names=("z", "y", "x"),
                              attrs={"unit": "turn units per activity unit", "lag_s": lag_s})
     for z in range(labels.shape[0]):
-        lab = np.asarray(labels[z])
-        arr[z] = np.where(lab > 0, lut[np.clip(lab, 0, lut.size - 1)], np.nan)
+        arr[z] = _painted(lut, labels[z])
+
+
+def _cell_lut(ids, values):
+    """Look-up table from cell label to value (NaN for labels without a value)."""
+    lut = np.full(int(max(ids.max(initial=0), 0)) + 1, np.nan, dtype=np.float32)
+    lut[ids] = values
+    return lut
+
+
+def _painted(lut, labels):
+    """One plane of a label volume with each cell's value from ``lut`` (NaN off cells)."""
+    lab = np.asarray(labels)
+    return np.where(lab > 0, lut[np.clip(lab, 0, lut.size - 1)], np.nan)
 
 
 def _fine_behaviour(store):
@@ -437,8 +447,6 @@ def _paint(store, cells, grid, tuned, names, epochs):
                                  attrs={**attrs, "unit": "rad" if what.endswith("rad") else ""})
         for k in range(n_t):
             for e in range(n_e):
-                lut = np.full(int(max(ids.max(initial=0), 0)) + 1, np.nan, dtype=np.float32)
-                vals = np.where(tuned[k, e], grid[what][k, e], np.nan)
-                lut[ids] = vals
+                lut = _cell_lut(ids, np.where(tuned[k, e], grid[what][k, e], np.nan))
                 for z in range(labels.shape[0]):
-                    arr[k, e, z] = lut[np.asarray(labels[z])]
+                    arr[k, e, z] = _painted(lut, labels[z])
