@@ -52,8 +52,9 @@ def _setup_logging(verbose: bool, quiet: bool, output: Path | None = None) -> No
     level = logging.DEBUG if verbose else logging.WARNING if quiet else logging.INFO
     log.setLevel(logging.DEBUG)
     log.propagate = False
-    for h in list(log.handlers):
+    for h in list(log.handlers):        # a previous run's handlers (tests call main twice)
         log.removeHandler(h)
+        h.close()
     console = logging.StreamHandler(sys.stderr)
     console.setLevel(level)
     console.setFormatter(logging.Formatter("forkmap: %(message)s"))

@@ -60,6 +60,8 @@ OUTPUTS: Mapping[str, tuple[str, tuple[str, ...]]] = {
     "decode_weights": ("decode", ("session.zarr/decode/weights",)),
     "decode_weights_table": ("decode", ("decode_weights.parquet",)),
     "decode_weight_map": ("decode", ("session.zarr/decode/weight_map",)),
+    "decode_pattern": ("decode", ("session.zarr/decode/pattern",)),
+    "decode_pattern_map": ("decode", ("session.zarr/decode/pattern_map",)),
     "tuning": ("tuning", ("tuning.parquet",)),
     "tuning_curves": ("tuning", ("session.zarr/tuning/curves",)),
 }

@@ -300,3 +300,32 @@ def test_earliest_lag_is_the_unbroken_run_above_null_and_chance():
     # ... with 39 nulls p = 0.025 < 0.05; -2.5 s beats the null but not chance (R^2 < 0), so
     # the run above null and chance that reaches the best lag (-1.0 s) starts at -2.0 s
     assert curve.best_lag_s == -1.0 and curve.earliest_lag_s == -2.0
+
+
+def test_activation_pattern_is_the_covariance_with_the_output(rng):
+    from pipeline.analysis.ridge import activation_pattern
+
+    X = rng.normal(size=(300, 7)) @ rng.normal(size=(7, 7))
+    w = rng.normal(size=7)
+    rows = np.arange(20, 300)
+    got = activation_pattern(X, rows, w)
+    y_hat = X[rows] @ w
+    # reference: numpy.cov of each cell with the decoder output, over its variance
+    c = np.cov(np.column_stack([X[rows], y_hat]), rowvar=False)
+    np.testing.assert_allclose(got, c[:-1, -1] / c[-1, -1], rtol=1e-10)
+    assert np.all(activation_pattern(X, rows, np.zeros(7)) == 0)
+
+
+def test_activation_pattern_ignores_a_noise_cancelling_cell(rng):
+    from pipeline.analysis.ridge import activation_pattern
+
+    # the two-channel distractor example of Haufe et al. (2014, NeuroImage 87:96; from memory): cell 0
+    # carries the signal plus noise, cell 1 the noise alone; the best decoder subtracts cell 1
+    # (a large weight on a cell that does not carry the signal), the pattern does not
+    n = 4000
+    signal, noise = rng.normal(size=n), rng.normal(size=n)
+    X = np.column_stack([signal + noise, noise])
+    w = np.linalg.lstsq(X, signal, rcond=None)[0]
+    np.testing.assert_allclose(w, [1.0, -1.0], atol=1e-9)
+    pattern = activation_pattern(X, np.arange(n), w)
+    np.testing.assert_allclose(pattern, [1.0, 0.0], atol=0.05)

@@ -162,14 +162,17 @@ def test_decoder_weight_map_separates_premotor_sides(run):
     weights = pd.read_parquet(run["out"] / "decode_weights.parquet")
     pos = ["z_um", "y_um", "x_um"]
     dist, idx = cKDTree(truth[pos].to_numpy()).query(weights[pos].to_numpy())
-    matched = truth.iloc[idx].assign(weight=weights["turn_weight"].to_numpy())[dist < 3.0]
+    matched = truth.iloc[idx].assign(pattern=weights["turn_pattern"].to_numpy())[dist < 3.0]
     pm = matched[matched["cell_class"] == "premotor"]
     # left-side premotor cells fire before leftward (positive) turns (demo_volume/README.md),
-    # so their weights in the turn decoder are positive on average, right-side ones negative
-    assert pm.loc[pm["side"] == "left", "weight"].mean() > 0
-    assert pm.loc[pm["side"] == "right", "weight"].mean() < 0
-    vol = s.array("decode_weight_map")
-    assert vol.shape == s.array("labels").shape
+    # so the decoder's activation pattern (Haufe et al. 2014) is positive for every one of
+    # them and negative for right-side ones. The raw weights are not: the weights of
+    # correlated premotor cells trade off against each other (their mean over left cells was
+    # -0.001 on seed 0, with single weights of both signs)
+    assert (pm.loc[pm["side"] == "left", "pattern"] > 0).mean() >= 0.9
+    assert (pm.loc[pm["side"] == "right", "pattern"] < 0).mean() >= 0.9
+    for name in ("decode_weight_map", "decode_pattern_map"):
+        assert s.array(name).shape == s.array("labels").shape
 
 
 # ---- tuning ---------------------------------------------------------------------------------

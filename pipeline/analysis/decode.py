@@ -21,6 +21,7 @@ from scipy import stats as _sps
 from pipeline.analysis.cv import BlockedKFold, TrialKFold
 from pipeline.analysis.ridge import (
     RidgeBasis,
+    activation_pattern,
     path_scores,
     pearson_columns,
     r2_columns,
@@ -129,6 +130,7 @@ class ContinuousDecode:
     r: LagCurve
     alpha: np.ndarray            # (n_folds, n_lags) penalty chosen by nested CV
     weights: np.ndarray          # (n_cells,) refit on all rows at the best lag
+    pattern: np.ndarray          # (n_cells,) activation pattern of those weights (Haufe 2014)
     weights_alpha: float
     weights_lag_s: float
     null_kind: str
@@ -293,7 +295,8 @@ def decode_continuous(X, y, *, lags, rate_hz, alphas=(0.1, 1.0, 10.0, 100.0, 1e3
     basis = RidgeBasis(X, rows, standardize=standardize, n_components=n_components)
     a_proj = basis.project_targets(Yv[:, [j]])
     weights = basis.coef(a_proj / (basis.s2 + w_alpha)[:, None])[:, 0]
-    return ContinuousDecode(r2_curve, r_curve, chosen[:, :n_lags], weights, w_alpha,
+    pattern = activation_pattern(X, rows, weights)
+    return ContinuousDecode(r2_curve, r_curve, chosen[:, :n_lags], weights, pattern, w_alpha,
                             float(lags_s[j]), null_kind, int(rows.size))
 
 

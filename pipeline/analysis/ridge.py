@@ -142,6 +142,54 @@ class RidgeBasis:
         return out / self.scale[:, None]
 
 
+def activation_pattern(X, rows, weights):
+    """Forward-model (activation) pattern of a linear decoder: ``cov(x_i, y_hat) / var(y_hat)``.
+
+    A decoder's weights are not a map of where the decoded signal lives: a cell can get a
+    large weight for cancelling noise it shares with informative cells, and the weight of an
+    informative cell can take either sign. The activation pattern is each cell's covariance
+    with the decoder's output, scaled by the output's variance; it is what the data say each
+    cell does when the decoded quantity changes. Computed block by block over cells, never
+    forming a cells x cells matrix.
+
+    Parameters
+    ----------
+    X : array-like of shape (n_samples, n_cells)
+        Activity (NumPy or zarr; read in blocks of cells).
+    rows : ndarray of int
+        The samples the decoder was fitted on.
+    weights : ndarray of shape (n_cells,)
+        Decoder weights in the original units of ``X``.
+
+    Returns
+    -------
+    ndarray of shape (n_cells,)
+        Activity units per decoded unit; zeros when the output is constant.
+
+    References
+    ----------
+    Haufe S, Meinecke F, Goergen K, Daehne S, Haynes J-D, Blankertz B, Biessmann F (2014). On
+    the interpretation of weight vectors of linear models in multivariate neuroimaging.
+    NeuroImage 87:96-110. doi:10.1016/j.neuroimage.2013.10.067 (eq. 6, one decoded target).
+    """
+    rows = np.asarray(rows)
+    weights = np.asarray(weights, dtype=np.float64)
+    n_cells = X.shape[1]
+    blocks = _blocks(n_cells)
+    y_hat = np.zeros(rows.size)
+    for sl in blocks:
+        y_hat += np.asarray(X[rows, sl], dtype=np.float64) @ weights[sl]
+    y_hat -= y_hat.mean()
+    var = float(y_hat @ y_hat)
+    out = np.zeros(n_cells)
+    if var <= 0:
+        return out
+    for sl in blocks:
+        xb = np.asarray(X[rows, sl], dtype=np.float64)
+        out[sl] = (xb - xb.mean(axis=0)).T @ y_hat / var
+    return out
+
+
 def _blocks(n, size=_BLOCK_CELLS):
     return [slice(a, min(a + size, n)) for a in range(0, n, size)]
 

@@ -165,7 +165,10 @@ def run_decode(settings, store, compute):
                              "alpha": res.weights_alpha}, dimension_names=("cell",))
     store.write_array("decode/lags_s", res.r2.lags_s, dimension_names=("lag",))
     store.write_array("decode/r2_folds", res.r2.folds, dimension_names=("fold", "lag"))
-    _write_weight_maps(store, res.weights, res.weights_lag_s)
+    store.write_array("decode/pattern", res.pattern.astype(np.float32),
+                      attrs={"unit": "activity units per turn unit",
+                             "lag_s": res.weights_lag_s}, dimension_names=("cell",))
+    _write_weight_maps(store, res.weights, res.pattern, res.weights_lag_s)
     store.set_info({"best_lag_s": res.r2.best_lag_s, "earliest_lag_s": res.r2.earliest_lag_s,
                     "null_kind": res.null_kind})
 
@@ -176,29 +179,34 @@ CIRCULAR_WARNING = ("decode: no trials, so the null shifts the turn series circu
                     "(Harris 2020, bioRxiv doi:10.1101/2020.11.29.402719)")
 
 
-def _write_weight_maps(store, weights, lag_s):
-    """Decoder weights per cell (a table with positions) and painted into the label volume."""
+def _write_weight_maps(store, weights, pattern, lag_s):
+    """Decoder weights and activation pattern per cell (a table with positions), painted into
+    the label volume (weights in ``decode/weight_map``, pattern in ``decode/pattern_map``)."""
     cells = store.read_table("cells.parquet")
     table = pd.DataFrame({"cell": cells["id"].to_numpy(), "plane": cells["plane"].to_numpy(),
                           **{c: cells[c].to_numpy(dtype=np.float64)
                              for c in ("z_um", "y_um", "x_um") if c in cells},
-                          "turn_weight": np.asarray(weights, dtype=np.float64)})
+                          "turn_weight": np.asarray(weights, dtype=np.float64),
+                          "turn_pattern": np.asarray(pattern, dtype=np.float64)})
     store.write_table("decode_weights.parquet", table,
                       metadata={"units": {"z_um": "um", "y_um": "um", "x_um": "um",
-                                          "turn_weight": "turn units per activity unit"},
+                                          "turn_weight": "turn units per activity unit",
+                                          "turn_pattern": "activity units per turn unit"},
                                 "lag_s": lag_s})
     try:
         labels = store.labels()
     except StoreError:
         store.warn("no cell label volume: decoder weight map not painted")
         return
-    lut = _cell_lut(cells["id"].to_numpy(), weights)
-    arr = store.create_array("decode/weight_map", shape=tuple(labels.shape), dtype="float32",
-                             chunks=(1, *labels.shape[1:]), fill_value=np.nan,
-                             dimension_names=("z", "y", "x"),
-                             attrs={"unit": "turn units per activity unit", "lag_s": lag_s})
-    for z in range(labels.shape[0]):
-        arr[z] = _painted(lut, labels[z])
+    for name, values, unit in (("weight_map", weights, "turn units per activity unit"),
+                               ("pattern_map", pattern, "activity units per turn unit")):
+        lut = _cell_lut(cells["id"].to_numpy(), values)
+        arr = store.create_array(f"decode/{name}", shape=tuple(labels.shape), dtype="float32",
+                                 chunks=(1, *labels.shape[1:]), fill_value=np.nan,
+                                 dimension_names=("z", "y", "x"),
+                                 attrs={"unit": unit, "lag_s": lag_s})
+        for z in range(labels.shape[0]):
+            arr[z] = _painted(lut, labels[z])
 
 
 def _cell_lut(ids, values):

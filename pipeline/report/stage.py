@@ -296,17 +296,25 @@ def _decoding(ctx: _Ctx) -> str:
             f"Confusion matrix of the bout-direction decoder at its best lag "
             f"({conf.get('lag_s', 0):+.1f} s), {conf.get('n_bouts', '')} test bouts summed "
             "over whole-trial folds (rows: true direction; columns: predicted)."))
-    if s.has("decode_weights") and s.has("cells"):
-        w = np.asarray(s.array("decode_weights").compute(), float)
+    # the activation pattern is the map to read (Haufe et al. 2014); older stores have weights
+    name = "decode_pattern" if s.has("decode_pattern") else "decode_weights"
+    if s.has(name) and s.has("cells"):
+        w = np.asarray(s.array(name).compute(), float)
         cells = s.cells
         if w.shape == (len(cells),):
+            what = ("Activation pattern of the continuous turn decoder (Haufe et al. 2014): each "
+                    "cell's covariance with the decoded turn per unit of decoded turn"
+                    if name == "decode_pattern" else
+                    "Weight of each cell in the continuous turn decoder")
             out.append(ctx.figure("weights", F.cell_map_figure(
                 cells["x_um"].to_numpy(), cells["y_um"].to_numpy(), cells["z_um"].to_numpy(),
-                w, label="decoder weight (turn units per ΔF/F)", symmetric=True),
-                f"Weight of each cell in the continuous turn decoder refitted on all samples at "
-                f"lag {doc.get('weights_lag_s', 'n/a')} s, at the cell's position (top: view "
-                "from above; bottom: side view; µm); colour scale symmetric about zero, positive "
-                "pushes the decoded turn to the left."))
+                w, label="pattern (ΔF/F per turn unit)" if name == "decode_pattern"
+                else "decoder weight (turn units per ΔF/F)", symmetric=True),
+                f"{what}, refitted on all samples at lag {doc.get('weights_lag_s', 'n/a')} s, "
+                "at the cell's position (top: view from above; bottom: side view; µm); colour "
+                "scale symmetric about zero, positive: the cell is more active before leftward "
+                "turns. Raw weights of correlated cells trade off against each other and are "
+                "not a map; they are in decode_weights.parquet."))
     return "\n".join(out)
 
 
