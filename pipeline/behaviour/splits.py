@@ -24,9 +24,11 @@ bracket the decision, ``commit_s`` keeps the latter). The split is found from th
 alone; the subtended angle (the arc spanned by the targets of ``R`` seen from the animal,
 :func:`pipeline.behaviour.geometry.target_set_geometry`) is only read off afterwards: at the
 start of the previous movement (``subtended_prev_rad``) and at the committing movement's
-onset (``subtended_post_rad``). The crossing lies between the two, and the population
-median of their midpoints (``subtended_mid_rad``), with a percentile-bootstrap confidence
-interval, estimates the critical angle.
+onset (``subtended_post_rad``). The crossing lies between the two; the population critical
+angle is the angle inside the most of these brackets (:func:`critical_angle_brackets`, with a
+paired percentile bootstrap), which a split dated a movement off cannot pull the way it pulls
+the median of the midpoints (``subtended_mid_rad``, kept in the table;
+:func:`critical_angle` is that simpler estimator).
 """
 
 from __future__ import annotations
