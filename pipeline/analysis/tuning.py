@@ -25,6 +25,7 @@ from pipeline.analysis.permtest import (
     permutation_bases,
     unique_variance_test,
 )
+from pipeline.analysis.regressors import window_epochs
 from pipeline.analysis.stats import bh_qvalues, binomial_interval, circular_mean, resultant_length
 from pipeline.errors import InputError
 
@@ -81,21 +82,13 @@ def epoch_masks(trial_ids, splits, *, pre, post):
         if sp.shape[0] != trials.size:
             raise InputError(f"splits: expected one row per trial ({trials.size} trials), got "
                              f"{sp.shape[0]} rows")
-    idx = np.arange(trial_ids.size)
-    masks = {"pre": np.zeros(idx.size, bool), "post": np.zeros(idx.size, bool)}
-    if sp.shape[1] >= 2:
-        masks["between"] = np.zeros(idx.size, bool)
-    for t, row in zip(trials, sp, strict=True):
-        row = row[np.isfinite(row) & (row >= 0)]
-        if row.size == 0:
-            continue
-        inside = trial_ids == t
-        first, last = row.min(), row.max()
-        masks["pre"] |= inside & (idx >= first - pre) & (idx < first)
-        masks["post"] |= inside & (idx >= last) & (idx < last + post)
-        if "between" in masks and row.size >= 2:
-            masks["between"] |= inside & (idx >= first) & (idx < last)
-    return {k: masks[k] for k in EPOCHS if k in masks}
+    # the same windows as the stage's time-based labels, with sample indices as times
+    label = window_epochs(np.arange(trial_ids.size, dtype=np.float64), trial_ids,
+                          {t: row[np.isfinite(row) & (row >= 0)]
+                           for t, row in zip(trials, sp, strict=True)},
+                          pre_s=pre, post_s=post)
+    epochs = EPOCHS if sp.shape[1] >= 2 else ("pre", "post")
+    return {k: label == k for k in epochs}
 
 
 def _bin_edges(n_bins):
