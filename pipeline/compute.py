@@ -9,16 +9,16 @@
 ``"slurm"``          a ``dask_jobqueue.SLURMCluster`` built from ``[compute.slurm]``
 
 Stages call :meth:`Compute.map` (one task per item, results in input order) or
-:meth:`Compute.compute` (dask collections).
+:meth:`Compute.compute` (dask collections). Both show one progress bar that works under every
+scheduler: dask's own bars print nothing under a distributed Client, so progress is counted from
+futures completing (``as_completed``).
 
 Tasks are the unit of parallelism: inside :meth:`Compute.reduce` / :meth:`Compute.map` BLAS runs
 on one thread per task under every scheduler (dask.distributed's workers already start with
 ``OPENBLAS_NUM_THREADS=1``; the thread and process pools and the inline loop are limited here).
 A second BLAS thread only oversubscribes the cores the workers use: the small matrix products
 of the sub-voxel motion refinement cost 234 ms of CPU per volume with OpenBLAS's two threads on
-the loaded 2-core test machine, 1.1 ms with one (measured). Both show one progress bar that works under every
-scheduler: dask's own bars print nothing under a distributed Client, so progress is counted from
-futures completing (``as_completed``).
+the loaded 2-core test machine, 1.1 ms with one (measured).
 """
 
 from __future__ import annotations
