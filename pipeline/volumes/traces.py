@@ -6,6 +6,8 @@ the ``traces`` stage maps them over blocks of cells.
 
 from __future__ import annotations
 
+import os
+
 import numba
 import numpy as np
 
@@ -296,8 +298,6 @@ def _cached_weights(path):
     """The weights at ``path``, loaded once per process and run (keyed by the save marker's
     time stamp): tasks of 16 volumes spent ~10 % of their time re-loading them (27 ms of
     CPU for 2,000 cells against ~240 ms of sampling, measured), and more with more cells."""
-    import os
-
     key = (str(path), os.stat(f"{path}.complete").st_mtime_ns)
     w = _WEIGHTS_CACHE.get(key)
     if w is None:
