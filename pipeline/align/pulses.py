@@ -9,7 +9,7 @@ from numpy.typing import ArrayLike, NDArray
 
 from pipeline.errors import InputError
 
-__all__ = ["rising_edges", "edge_brackets", "pulses_from_timestamps"]
+__all__ = ["rising_edges", "edge_brackets", "bracket_times", "pulses_from_timestamps"]
 
 
 def rising_edges(signal: ArrayLike, t_s: ArrayLike | None = None, *, threshold: float = 0.5,
@@ -39,10 +39,17 @@ def rising_edges(signal: ArrayLike, t_s: ArrayLike | None = None, *, threshold: 
     -------
     ndarray of float64 of shape (n_edges,)
     """
-    times, low = edge_brackets(signal, t_s, threshold=threshold, min_interval_s=min_interval_s)
+    high, low = edge_brackets(signal, t_s, threshold=threshold, min_interval_s=min_interval_s)
+    return bracket_times(high, low, edge_time=edge_time)
+
+
+def bracket_times(high: NDArray[np.float64], low: NDArray[np.float64], *,
+                  edge_time: Literal["first_high", "midpoint"] = "first_high"
+                  ) -> NDArray[np.float64]:
+    """The time given to each edge of :func:`edge_brackets` (see :func:`rising_edges`)."""
     if edge_time == "midpoint":
-        return np.where(np.isfinite(low), 0.5 * (times + low), times)
-    return times
+        return np.where(np.isfinite(low), 0.5 * (high + low), high)
+    return high
 
 
 def edge_brackets(signal: ArrayLike, t_s: ArrayLike | None = None, *, threshold: float = 0.5,

@@ -19,7 +19,7 @@ import numpy as np
 import pandas as pd
 
 from pipeline.align.clocks import ClockModel, fit_clock
-from pipeline.align.pulses import edge_brackets, pulses_from_timestamps, rising_edges
+from pipeline.align.pulses import bracket_times, edge_brackets, pulses_from_timestamps
 from pipeline.align.resample import resample_behaviour
 from pipeline.align.timing import plane_times
 from pipeline.errors import AlignmentError, InputError
@@ -78,12 +78,11 @@ def align_kernels(table: pd.DataFrame, geometry: dict[str, np.ndarray],
         pulse_source = f"{source}, column {sync.trigger_column!r}"
     brackets = None
     if pulses_rig_s is None:
-        trig = table[sync.trigger_column].to_numpy(np.float64)
-        pulses_rig_s = rising_edges(trig, t_rig, min_interval_s=sync.debounce_s,
-                                    edge_time=sync.edge_time)
         # a sampled edge brackets its pulse: after the last low sample, at or before the first
         # high one (the interval fit of the clock uses both ends)
-        high, low = edge_brackets(trig, t_rig, min_interval_s=sync.debounce_s)
+        high, low = edge_brackets(table[sync.trigger_column].to_numpy(np.float64), t_rig,
+                                  min_interval_s=sync.debounce_s)
+        pulses_rig_s = bracket_times(high, low, edge_time=sync.edge_time)
         brackets = (low, high)
     if sync.pulse_per == "volume":
         events = acquired_s.min(axis=1)
