@@ -150,7 +150,8 @@ def _parse_path(ctx: _Ctx, key: str, value: Any, meta: typing.Mapping[str, Any])
         raise _fail(ctx, key, value, "a path string")
     path = Path(value).expanduser()
     if not path.is_absolute():
-        path = ctx.base_dir / path
+        # resolved, so messages and logs show runs/demo rather than configs/../runs/demo
+        path = (ctx.base_dir / path).resolve()
     kind = meta.get("path", "out")
     if ctx.check_files and kind == "file" and not path.is_file():
         raise ConfigError(f"{ctx.source}: {key} = {describe(value)}: no such file {path}")
