@@ -300,6 +300,12 @@ def test_earliest_lag_is_the_unbroken_run_above_null_and_chance():
     # ... with 39 nulls p = 0.025 < 0.05; -2.5 s beats the null but not chance (R^2 < 0), so
     # the run above null and chance that reaches the best lag (-1.0 s) starts at -2.0 s
     assert curve.best_lag_s == -1.0 and curve.earliest_lag_s == -2.0
+    # a mean just above chance whose folds straddle it (R^2 +0.03 and -0.01: the t interval
+    # across folds, scipy.stats.t, includes 0) is not counted as decodable: run starts at -1.5 s
+    folds[:, 2] = [0.03, -0.01]
+    curve = _curve("r2", lags_s, folds, np.full((39, 5), -0.05))
+    assert curve.mean[2] > 0 and curve.ci_low[2] < 0
+    assert curve.earliest_lag_s == -1.5
 
 
 def test_activation_pattern_is_the_covariance_with_the_output(rng):

@@ -62,9 +62,11 @@ class LagCurve:
     """One score across lags: per fold, mean with a 95% interval across folds, and its null.
 
     ``p`` uses the +1 correction (Phipson & Smyth 2010). A lag *exceeds the null* when its
-    mean is above the null's 95th percentile with ``p < 0.05`` and above chance (R^2 and r
-    above 0, ROC AUC and balanced accuracy above 0.5: shuffled-target refits often score
-    below chance, so beating them alone does not make a lag decodable); ``earliest_lag_s`` is the
+    mean is above the null's 95th percentile with ``p < 0.05`` and the lower end of its 95%
+    interval across folds is above chance (R^2 and r above 0, ROC AUC and balanced accuracy
+    above 0.5): shuffled-target refits often score below chance, so beating them alone does
+    not make a lag decodable, and a mean a hair above chance (R^2 = 0.0005 with folds on both
+    sides of 0) is not a readout either; ``earliest_lag_s`` is the
     earliest lag of the unbroken run of such lags that reaches the best lag, i.e. how long
     before the peak the score is continuously above the null (an isolated early lag, one of
     many tested at 5 %, does not count). None when the best lag itself does not exceed the
@@ -106,7 +108,7 @@ def _curve(metric, lags_s, folds, null=None, *, level=0.95, alpha_p=0.05):
     if null.shape[0]:
         p = permutation_pvalue(mean, null)
         p95 = np.quantile(null, 0.95, axis=0)
-        above = (mean > p95) & (p < alpha_p) & (mean > _CHANCE.get(metric, -np.inf))
+        above = (mean > p95) & (p < alpha_p) & (mean - half > _CHANCE.get(metric, -np.inf))
         earliest = None
         if np.any(np.isfinite(mean)) and above[int(np.nanargmax(mean))]:
             j = int(np.nanargmax(mean))

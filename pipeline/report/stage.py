@@ -287,7 +287,10 @@ def _decoding(ctx: _Ctx) -> str:
                               f"before the turn). Thick: mean over {len(folds) if folds is not None else 0} "
                               "test folds; thin: each fold; grey band: null mean to 95th "
                               f"percentile ({c.get('n_null', 0)} refits on shuffled targets). "
-                              f"Best lag {best if best is not None else 'n/a'} s, peak {peak:.3g}."
+                              f"Best lag {best if best is not None else 'n/a'} s, peak {peak:.3g}. "
+                              "Dashed: earliest decodable lag, the start of the unbroken run of "
+                              "lags up to the best one that beat the null's 95th percentile "
+                              "(p < 0.05) with their 95% interval across folds above chance."
                               ))
     conf = doc.get("bout_confusion")
     if isinstance(conf, dict) and conf.get("confusion"):
