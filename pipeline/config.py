@@ -289,6 +289,9 @@ class TuningSettings:
                               "epoch it opens (the indicator still shows the previous epoch)",
                               unit="s", ge=0.0)
     n_permutations: int = _f(1000, doc="permutations of the null", ge=10)
+    min_epoch_trials: int = _f(8, doc="an epoch is tested only when at least this many trials "
+                               "have samples in it (with fewer, whole-trial permutations cannot "
+                               "tell the targets' correlated bearings apart)", ge=3)
     null: Literal["trial", "circular"] = _f("trial", doc="trial shuffle or circular shift")
     min_shift_s: float = _f(20.0, doc="minimum circular shift", unit="s", ge=0.0)
     fdr_q: float = _f(0.05, doc="Benjamini-Hochberg level", gt=0.0, lt=1.0)

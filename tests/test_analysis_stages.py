@@ -29,14 +29,14 @@ from pipeline.store import Store
 RATE_HZ, N_TRIALS, TRIAL_LEN, N_PLANES = 2.0, 12, 60, 2
 
 
-def _settings(tmp_path: Path):
+def _settings(tmp_path: Path, **tuning):
     table = {"session": {"output": str(tmp_path / "out")},
              "imaging": {"raw": "*.tif", "voxel_size_um": [2.0, 1.0, 1.0],
                          "volume_rate_hz": RATE_HZ, "planes_per_volume": N_PLANES},
              "decode": {"lag_min_s": -2.0, "lag_max_s": 0.0, "n_null": 5, "n_folds": 3,
                         "alphas": [1.0, 100.0], "n_null_bouts": 0},
              "tuning": {"n_permutations": 499, "pre_window_s": 15.0, "post_window_s": 15.0,
-                        "min_occupancy_s": 0.0}}
+                        "min_occupancy_s": 0.0, **tuning}}
     return parse_config(table, base_dir=tmp_path, check_files=False)
 
 
@@ -169,6 +169,21 @@ def test_tuning_stage_matches_kernel(rng, tmp_path):
     for cell in (11, 12):
         assert np.all(t0_pre[labels == cell] == np.float32(got.loc[cell, "preferred_rad"]))
     assert np.all(np.isnan(t0_pre[labels == 0]))
+
+
+@pytest.mark.parametrize("min_trials", [N_TRIALS, N_TRIALS + 1])
+def test_tuning_stage_skips_epochs_with_too_few_trials(rng, tmp_path, min_trials):
+    # every trial has one split, so "pre" and "post" each hold N_TRIALS trials: they are
+    # tested at min_epoch_trials = N_TRIALS and left untested (no rows) one above
+    settings = _settings(tmp_path, min_epoch_trials=min_trials)
+    base, *_ = _prepare(rng, settings)
+    sub = base.stage_store("tuning", "h", resumable=False)
+    with Compute(ComputeSettings(workers=1), quiet=True) as compute:
+        run_tuning(settings, sub, compute)
+    sub.commit()
+    table = pd.read_parquet(base.root / "tuning.parquet")
+    expected = {"pre", "post"} if min_trials <= N_TRIALS else set()
+    assert set(table["epoch"]) == expected
 
 
 @pytest.mark.parametrize(("present", "missing"), [

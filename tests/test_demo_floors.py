@@ -97,6 +97,7 @@ def test_tuning_preferred_bearing(run):
     r = tuning_recovery(run)
     # measured: sensitivity 0.83, false discovery proportion 0.14, median error 8 deg, 87 %
     # of found keys within 20 deg
+    # (seed 1: 0.91, 0.08; seed 2: 0.84, 0.08 with tuning.min_epoch_trials = 8, 0.20 without)
     assert r["median_err_deg"] <= 20.0
     assert r["within_20"] >= 0.8
     assert r["sensitivity"] >= 0.75 and r["fdr"] <= 0.2          # regression guards

@@ -264,7 +264,7 @@ def _tuning_task(rows, activity_path, design, options):
     out = []
     for e, epoch in enumerate(design["epochs"]):
         inside = epoch_of == epoch
-        if np.unique(trial[inside]).size < 3:
+        if np.unique(trial[inside]).size < options["min_epoch_trials"]:
             continue
         # targets with terms on this epoch's samples (a third target shown in some trials)
         keep = [k for k in range(terms.shape[2]) if np.any(terms[inside, e, k] != 0)]
@@ -353,6 +353,7 @@ def run_tuning(settings, store, compute):
                "null": ts.null, "min_shift": max(1, round(ts.min_shift_s * im.volume_rate_hz)),
                "post_s": ts.post_window_s, "trial_intercepts": ts.trial_intercepts,
                "guard_s": ts.split_guard_s,
+               "min_epoch_trials": ts.min_epoch_trials,
                "n_bins": ts.n_bins,
                "min_count": max(1, round(ts.min_occupancy_s * im.volume_rate_hz))}
     tasks = []
