@@ -6,13 +6,14 @@ import numpy as np
 import pytest
 
 from pipeline.behaviour import (
+    CrossingPrior,
     critical_angle,
     critical_angle_brackets,
+    crossing_prior,
     detect_splits,
     trajectory_density,
 )
 from pipeline.behaviour.geometry import circular_mean
-from pipeline.behaviour.splits import CrossingPrior, crossing_prior
 
 DT_S = 0.02
 SPEED_MM_S = 2.0

@@ -20,15 +20,31 @@ When was the decision taken? The committing movement shows it, but it starts aft
 the view of static targets changes only while the animal moves, so the geometry that
 triggered the decision was reached during the *previous* movement. The split is placed in
 the middle of that movement (``split_s``; its onset and the committing movement's onset
-bracket the decision, ``commit_s`` keeps the latter). The split is found from the trajectory
-alone; the subtended angle (the arc spanned by the targets of ``R`` seen from the animal,
-:func:`pipeline.behaviour.geometry.target_set_geometry`) is only read off afterwards: at the
-start of the previous movement (``subtended_prev_rad``) and at the committing movement's
-onset (``subtended_post_rad``). The crossing lies between the two; the population critical
-angle is the angle inside the most of these brackets (:func:`critical_angle_brackets`, with a
-paired percentile bootstrap), which a split dated a movement off cannot pull the way it pulls
-the median of the midpoints (``subtended_mid_rad``, kept in the table;
-:func:`critical_angle` is that simpler estimator).
+bracket the decision, ``commit_s`` keeps the latter). The subtended angle (the arc spanned by
+the targets of ``R`` seen from the animal, :func:`pipeline.behaviour.geometry.
+target_set_geometry`) is read off at the start of the previous movement
+(``subtended_prev_rad``) and at the committing movement's onset (``subtended_post_rad``).
+The crossing lies between the two; the population critical angle is the angle inside the
+most of these brackets (:func:`critical_angle_brackets`, with a paired percentile bootstrap),
+which a split dated a movement off cannot pull the way it pulls the median of the midpoints
+(``subtended_mid_rad``, kept in the table; :func:`critical_angle` is that simpler estimator).
+
+Two passes (empirical Bayes). The steering alone dates a split only as well as one
+movement's turn tells the two goals apart: while the targets are far the old and new
+bisectors differ by 15-25 degrees, about one turn-noise sd, so a few noisy turns can move a
+change point by several movements. The first pass uses the trajectory alone and gives the
+critical angle. The second (:func:`crossing_prior`, ``prior=`` here) adds to each change
+point the log-probability that a common threshold ``theta ~ N(centre, sd)`` -- centre the
+first pass's critical angle, sd the spread of its bracket midpoints -- is first passed by
+the subtended angle between the starts of the movement before and the committing movement
+(the largest angle over every sample in between, so a moving target that swings the angle
+up and back is seen), and that a set left unsplit never passed it; a uniform part ``eps``
+keeps a split the angle does not explain. The log-probability enters the von Mises loss
+divided by the residuals' concentration ``kappa`` (the loss is ``-log L / kappa``), so the
+steering and the angle are weighed by their own measured noise, and a population whose
+decisions scatter widely in angle gets a weak prior. The critical angle is still taken from
+the first pass: the second leans on it, and its brackets would only echo it. The second
+pass's ``subtended_*`` columns are therefore shrunk towards the population value by design.
 """
 
 from __future__ import annotations
@@ -43,8 +59,8 @@ from scipy.stats import bootstrap, norm, vonmises
 
 from pipeline.behaviour.geometry import circular_mean, target_set_geometry, wrap_angle
 
-__all__ = ["detect_splits", "crossing_prior", "CrossingPrior", "critical_angle", "critical_angle_brackets", "trajectory_density",
-           "TrajectoryDensity", "SPLIT_COLUMNS"]
+__all__ = ["detect_splits", "crossing_prior", "CrossingPrior", "critical_angle",
+           "critical_angle_brackets", "SPLIT_COLUMNS"]
 
 SPLIT_COLUMNS = ("trial", "level", "split_index", "split_s", "commit_s", "x_mm", "y_mm",
                  "subtended_rad", "subtended_prev_rad", "subtended_post_rad",
@@ -233,6 +249,10 @@ def detect_splits(t_s: ArrayLike, x_mm: ArrayLike, y_mm: ArrayLike, heading_rad:
         Alternations of the segmentation and the steering gain's least-squares fit.
     still_rad, still_mm : float, default=1e-6
         Heading / position steps at most this large count as "not turning" / "not moving".
+    prior : CrossingPrior, optional
+        Second pass: weigh each change point by the probability that the subtended angle
+        crossed the population threshold there (:func:`crossing_prior`); default none, the
+        steering alone.
 
     Returns
     -------
@@ -244,7 +264,8 @@ def detect_splits(t_s: ArrayLike, x_mm: ArrayLike, y_mm: ArrayLike, heading_rad:
         one and at the committing movement's onset (the crossing lies between the two) and
         their mean, the dropped target, the chosen target (set when one target is left, else
         empty) and the number of targets remaining before the split. Trials without a split
-        have no row.
+        have no row. ``attrs``: ``steering_gain``, ``steering_kappa`` (von Mises concentration
+        of the steering residuals) and ``crossing_prior`` (the prior used, as a dict, or None).
 
     References
     ----------
@@ -255,6 +276,8 @@ def detect_splits(t_s: ArrayLike, x_mm: ArrayLike, y_mm: ArrayLike, heading_rad:
     Jackson, B. et al. (2005). An algorithm for optimal partitioning of data on an interval.
     IEEE Signal Processing Letters 12(2), 105-108 (penalised optimal segmentation by dynamic
     programming). DOI:10.1109/LSP.2001.838216.
+    Robbins, H. (1956). An empirical Bayes approach to statistics. Proc. Third Berkeley Symp.
+    Math. Statist. Prob. 1, 157-163 (the second pass's prior, estimated from the first pass).
     """
     t = np.asarray(t_s, dtype=np.float64)
     x, y = np.asarray(x_mm, dtype=np.float64), np.asarray(y_mm, dtype=np.float64)
@@ -491,67 +514,3 @@ def critical_angle_brackets(low_rad: ArrayLike, high_rad: ArrayLike, *, n_resamp
         low = high = float(out["estimate_rad"])
     out["ci_low_rad"], out["ci_high_rad"] = low, high
     return out
-
-
-class TrajectoryDensity(NamedTuple):
-    """Folded, rotated trajectory histogram (see :func:`trajectory_density`)."""
-
-    counts: NDArray[np.float64]
-    """(n_y_bins, n_x_bins) fraction of samples per bin (rows = y, for image display)."""
-    x_edges_mm: NDArray[np.float64]
-    """lateral |x| bin edges (mm), from 0."""
-    y_edges_mm: NDArray[np.float64]
-    """forward bin edges (mm); the targets' centre of mass lies on +y."""
-    n_trials: int
-
-
-def trajectory_density(x_mm: ArrayLike, y_mm: ArrayLike, target_x_mm: ArrayLike,
-                       target_y_mm: ArrayLike, trial: ArrayLike, *, bin_mm: float = 0.5,
-                       extent_mm: tuple[float, float, float] | None = None
-                       ) -> TrajectoryDensity:
-    """2-D histogram of trajectories in a common frame, folded about the midline.
-
-    Each trial is translated so it starts at the origin and rotated so the centre of mass of
-    the targets present at its first sample lies ahead on +y; then ``x -> |x|`` folds left and
-    right choices together.
-
-    Parameters
-    ----------
-    x_mm, y_mm, trial : array_like of shape (n,)
-    target_x_mm, target_y_mm : array_like of shape (n, n_targets)
-    bin_mm : float, default=0.5
-    extent_mm : (x_max, y_min, y_max), optional
-        Histogram extent; default from the data.
-
-    Returns
-    -------
-    TrajectoryDensity
-    """
-    x, y = np.asarray(x_mm, dtype=np.float64), np.asarray(y_mm, dtype=np.float64)
-    tx = np.atleast_2d(np.asarray(target_x_mm, dtype=np.float64).T).T
-    ty = np.atleast_2d(np.asarray(target_y_mm, dtype=np.float64).T).T
-    tr = np.asarray(trial)
-    valid = tr >= 0
-    ids, inverse = np.unique(tr[valid], return_inverse=True)
-    sel = np.flatnonzero(valid)
-    _, first_pos = np.unique(inverse, return_index=True)
-    first = sel[first_pos]
-    cx = np.nanmean(tx[first], axis=1)
-    cy = np.nanmean(ty[first], axis=1) if tx.shape[1] else np.zeros(ids.size)
-    ang = np.arctan2(cy - y[first], cx - x[first])
-    rot = np.pi / 2 - ang[inverse]
-    dx, dy = x[sel] - x[first][inverse], y[sel] - y[first][inverse]
-    c, s = np.cos(rot), np.sin(rot)
-    fx = np.abs(c * dx - s * dy)
-    fy = s * dx + c * dy
-    if extent_mm is None:
-        x_max = max(float(fx.max(initial=0.0)), bin_mm)
-        y_min, y_max = float(fy.min(initial=0.0)), max(float(fy.max(initial=0.0)), bin_mm)
-    else:
-        x_max, y_min, y_max = extent_mm
-    x_edges = np.arange(0.0, x_max + bin_mm, bin_mm)
-    y_edges = np.arange(np.floor(y_min / bin_mm) * bin_mm, y_max + bin_mm, bin_mm)
-    counts, _, _ = np.histogram2d(fx, fy, bins=(x_edges, y_edges))
-    total = counts.sum()
-    return TrajectoryDensity((counts / total if total else counts).T, x_edges, y_edges,
-                             int(ids.size))

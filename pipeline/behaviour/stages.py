@@ -18,6 +18,7 @@ import numpy as np
 import pandas as pd
 
 from pipeline.behaviour.bouts import detect_turns
+from pipeline.behaviour.density import trajectory_density
 from pipeline.behaviour.geometry import (
     egocentric_bearing,
     target_distance,
@@ -28,7 +29,6 @@ from pipeline.behaviour.splits import (
     critical_angle_brackets,
     crossing_prior,
     detect_splits,
-    trajectory_density,
 )
 from pipeline.stages import stage
 
