@@ -360,8 +360,9 @@ def crossing_prior(splits: pd.DataFrame, *, eps: float = 0.05) -> CrossingPrior 
     ----------
     Robbins, H. (1956). An empirical Bayes approach to statistics. Proc. Third Berkeley Symp.
     Math. Statist. Prob. 1, 157-163 (a prior estimated from the population of cases).
-    Mardia, K. V. & Jupp, P. E. (2000). *Directional Statistics*. Wiley, section 5.3 (von Mises
-    concentration by maximum likelihood; computed with :func:`scipy.stats.vonmises` ``fit``).
+    Mardia, K. V. & Jupp, P. E. (2000). *Directional Statistics*. Wiley, section 5.3 (from
+    memory; von Mises concentration by maximum likelihood, computed with
+    :func:`scipy.stats.vonmises` ``fit``).
     """
     lo = splits["subtended_prev_rad"].to_numpy(np.float64)
     hi = splits["subtended_post_rad"].to_numpy(np.float64)
