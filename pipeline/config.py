@@ -145,6 +145,10 @@ class BehaviourSettings:
                               "disagreement with the steering model)", ge=0.0)
     split_step_max_s: float = _f(0.6, doc="longest movement taken as one step of the split "
                                  "segmentation", unit="s", gt=0.0)
+    split_angle_prior: bool = _f(True, doc="re-time the splits with the critical angle of the "
+                                 "steering-only splits as a prior (empirical Bayes)")
+    split_prior_eps: float = _f(0.05, doc="weight of a uniform component in that prior (splits "
+                                "the angle does not explain)", gt=0.0, lt=1.0)
     density_bin_mm: float = _f(0.5, doc="bin of the folded trajectory density map", unit="mm",
                                gt=0.0)
     bootstrap_resamples: int = _f(2000, doc="bootstrap resamples of the critical angle CI",

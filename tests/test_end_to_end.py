@@ -101,21 +101,17 @@ def test_splits_recovered(run):
     ibi = bout_interval_s(run["truth"])
     # heading changes only in bouts (README): the split is found at the first movement that
     # steers for the new goal and dated to the middle of the movement before it (the crossing
-    # happens while the animal moves). Measured on seed 0: 20 of 21 planted splits found (one
-    # extra), 81% within one bout interval (0.75 s; seed 1: 88%, default seed 0: 85%), 90%
-    # within two; the 90%-within-one target is the xfail below
+    # happens while the animal moves), re-timed with the steering-only critical angle as a
+    # prior. Measured on seed 0: 20 of 21 planted splits found, 95% within two bout intervals
     assert np.mean(np.isfinite(err)) >= 0.9
-    assert np.mean(err <= 2 * ibi) >= 0.85
-    assert np.mean(err <= ibi) >= 0.75
+    assert np.mean(err <= 2 * ibi) >= 0.9
     # a split dated to the right bout is within half a bout (bouts last 0.2-0.35 s, README)
     assert np.median(err[np.isfinite(err)]) < 0.15
 
 
-@pytest.mark.xfail(strict=True, reason="81% of planted splits within one bout interval on "
-                   "seed 0 (17 of 21; seed 1: 88%, default: 85%): most misses are first "
-                   "splits of three-target trials dated a few bouts early (the two goals differ "
-                   "little while the targets are far); target 90%")
 def test_splits_within_one_bout_interval(run):
+    # floor 90% (issue 5). Measured, small preset: seed 0 90.5% (19 of 21; 81% with the
+    # steering alone), seed 1 100% (88%), seed 2 88% (69%); seeds 3-7 89-100%
     assert np.mean(split_errors_s(run) <= bout_interval_s(run["truth"])) >= 0.9
 
 

@@ -1,6 +1,7 @@
 """Rig behaviour: reading and validating the log, turn events, target geometry, splits."""
 
 from pipeline.behaviour.bouts import BOUT_COLUMNS, detect_turns, heading_velocity
+from pipeline.behaviour.density import TrajectoryDensity, trajectory_density
 from pipeline.behaviour.geometry import (
     TargetSet,
     circular_mean,
@@ -12,11 +13,11 @@ from pipeline.behaviour.geometry import (
 from pipeline.behaviour.log import CANONICAL_COLUMNS, DEFAULT_COLUMNS, LogSpec, read_log
 from pipeline.behaviour.splits import (
     SPLIT_COLUMNS,
-    TrajectoryDensity,
+    CrossingPrior,
     critical_angle,
     critical_angle_brackets,
+    crossing_prior,
     detect_splits,
-    trajectory_density,
 )
 
 __all__ = [
@@ -25,11 +26,13 @@ __all__ = [
     "DEFAULT_COLUMNS",
     "SPLIT_COLUMNS",
     "LogSpec",
+    "CrossingPrior",
     "TargetSet",
     "TrajectoryDensity",
     "circular_mean",
     "critical_angle",
     "critical_angle_brackets",
+    "crossing_prior",
     "detect_splits",
     "detect_turns",
     "egocentric_bearing",

@@ -20,15 +20,31 @@ When was the decision taken? The committing movement shows it, but it starts aft
 the view of static targets changes only while the animal moves, so the geometry that
 triggered the decision was reached during the *previous* movement. The split is placed in
 the middle of that movement (``split_s``; its onset and the committing movement's onset
-bracket the decision, ``commit_s`` keeps the latter). The split is found from the trajectory
-alone; the subtended angle (the arc spanned by the targets of ``R`` seen from the animal,
-:func:`pipeline.behaviour.geometry.target_set_geometry`) is only read off afterwards: at the
-start of the previous movement (``subtended_prev_rad``) and at the committing movement's
-onset (``subtended_post_rad``). The crossing lies between the two; the population critical
-angle is the angle inside the most of these brackets (:func:`critical_angle_brackets`, with a
-paired percentile bootstrap), which a split dated a movement off cannot pull the way it pulls
-the median of the midpoints (``subtended_mid_rad``, kept in the table;
-:func:`critical_angle` is that simpler estimator).
+bracket the decision, ``commit_s`` keeps the latter). The subtended angle (the arc spanned by
+the targets of ``R`` seen from the animal, :func:`pipeline.behaviour.geometry.
+target_set_geometry`) is read off at the start of the previous movement
+(``subtended_prev_rad``) and at the committing movement's onset (``subtended_post_rad``).
+The crossing lies between the two; the population critical angle is the angle inside the
+most of these brackets (:func:`critical_angle_brackets`, with a paired percentile bootstrap),
+which a split dated a movement off cannot pull the way it pulls the median of the midpoints
+(``subtended_mid_rad``, kept in the table; :func:`critical_angle` is that simpler estimator).
+
+Two passes (empirical Bayes). The steering alone dates a split only as well as one
+movement's turn tells the two goals apart: while the targets are far the old and new
+bisectors differ by 15-25 degrees, about one turn-noise sd, so a few noisy turns can move a
+change point by several movements. The first pass uses the trajectory alone and gives the
+critical angle. The second (:func:`crossing_prior`, ``prior=`` here) adds to each change
+point the log-probability that a common threshold ``theta ~ N(centre, sd)`` -- centre the
+first pass's critical angle, sd the spread of its bracket midpoints -- is first passed by
+the subtended angle between the starts of the movement before and the committing movement
+(the largest angle over every sample in between, so a moving target that swings the angle
+up and back is seen), and that a set left unsplit never passed it; a uniform part ``eps``
+keeps a split the angle does not explain. The log-probability enters the von Mises loss
+divided by the residuals' concentration ``kappa`` (the loss is ``-log L / kappa``), so the
+steering and the angle are weighed by their own measured noise, and a population whose
+decisions scatter widely in angle gets a weak prior. The critical angle is still taken from
+the first pass: the second leans on it, and its brackets would only echo it. The second
+pass's ``subtended_*`` columns are therefore shrunk towards the population value by design.
 """
 
 from __future__ import annotations
@@ -39,12 +55,12 @@ from typing import NamedTuple
 import numpy as np
 import pandas as pd
 from numpy.typing import ArrayLike, NDArray
-from scipy.stats import bootstrap
+from scipy.stats import bootstrap, norm, vonmises
 
 from pipeline.behaviour.geometry import circular_mean, target_set_geometry, wrap_angle
 
-__all__ = ["detect_splits", "critical_angle", "critical_angle_brackets", "trajectory_density",
-           "TrajectoryDensity", "SPLIT_COLUMNS"]
+__all__ = ["detect_splits", "crossing_prior", "CrossingPrior", "critical_angle",
+           "critical_angle_brackets", "SPLIT_COLUMNS"]
 
 SPLIT_COLUMNS = ("trial", "level", "split_index", "split_s", "commit_s", "x_mm", "y_mm",
                  "subtended_rad", "subtended_prev_rad", "subtended_post_rad",
@@ -60,6 +76,8 @@ class _Steps(NamedTuple):
     heading: NDArray[np.float64]  # heading at ``start``
     direc: NDArray[np.float64]    # (m, k) world direction to each target at ``start``
     r0: list[int]                 # the trial's targets
+    direc_all: NDArray[np.float64]   # (n, k) direction to each target at every trial sample
+    start_pos: NDArray[np.int64]     # position of each ``start`` among the trial's samples
 
 
 def _movements(changing: NDArray[np.bool_], t: NDArray[np.float64], idx: NDArray[np.int64],
@@ -95,7 +113,8 @@ def _trial_steps(idx: NDArray[np.int64], t: NDArray[np.float64], x: NDArray[np.f
     first = vis[0] if vis[0].any() else vis.any(axis=0)
     return _Steps(start, end, h_unwrapped[end] - h_unwrapped[start],
                   wrap_angle(h_unwrapped[start]), direc,
-                  [int(j) for j in np.flatnonzero(first)])
+                  [int(j) for j in np.flatnonzero(first)], at0,
+                  np.searchsorted(idx, start))
 
 
 def _goal_errors(st: _Steps, sets: list[list[int]]) -> list[NDArray[np.float64]]:
@@ -107,14 +126,19 @@ def _goal_errors(st: _Steps, sets: list[list[int]]) -> list[NDArray[np.float64]]
     return out
 
 
-def _best_segmentation(cum: list[NDArray[np.float64]]) -> tuple[float, list[int]]:
+def _best_segmentation(cum: list[NDArray[np.float64]],
+                       start_cost: list[NDArray[np.float64]] | None = None
+                       ) -> tuple[float, list[int]]:
     """Least total loss of consecutive segments following ``cum[0], cum[1], ...`` in order,
-    covering every step, and the step where each segment after the first starts."""
+    covering every step, and the step where each segment after the first starts
+    (``start_cost[l - 1][c]``: added when segment ``l`` starts at step ``c``)."""
     m = cum[0].size - 1
     best = cum[0].copy()             # best[c]: segments 0..l cover steps [0, c)
     back: list[NDArray[np.int64]] = []
-    for c_l in cum[1:]:
+    for lv, c_l in enumerate(cum[1:]):
         a = best - c_l
+        if start_cost is not None:
+            a = a + start_cost[lv]
         run = np.minimum.accumulate(a)
         # index of the running minimum: the last position where the running min was set
         is_new = np.concatenate(([True], a[1:] < run[:-1]))
@@ -129,7 +153,42 @@ def _best_segmentation(cum: list[NDArray[np.float64]]) -> tuple[float, list[int]
     return float(best[m]), cuts[::-1]
 
 
-def _segment(st: _Steps, gain: float, penalty: float
+class CrossingPrior(NamedTuple):
+    """Prior on where a split falls (see :func:`crossing_prior`)."""
+
+    centre_rad: float
+    """Population critical angle: the subtended angle at which a set is split."""
+    sd_rad: float
+    """Spread of the per-split threshold around ``centre_rad``."""
+    kappa: float
+    """Von Mises concentration of the steering residuals (converts log-probabilities into
+    loss units: ``loss = sum(1 - cos(residual))`` is ``-log L / kappa`` up to a constant)."""
+    eps: float
+    """Weight of a uniform component over the outcomes (a split not set by the angle)."""
+
+
+def _crossing_cost(st: _Steps, members: list[int], prior: CrossingPrior) -> NDArray[np.float64]:
+    """Loss-unit cost ``-log p / kappa`` of each outcome for the target set ``members``.
+
+    Under a threshold ``theta ~ N(centre, sd)`` the committing movement is ``c`` when the
+    subtended angle of the set first passes ``theta`` between the starts of movements ``c - 1``
+    and ``c``: with ``M[c]`` the largest subtended angle of the trial's samples up to the
+    start of movement ``c`` (``M[m]``: up to the trial's last sample),
+    ``p(c) = Phi(M[c]) - Phi(M[c - 1])`` for ``c = 0..m``, and the set is never split with
+    ``p = 1 - Phi(M[m])`` (the last element). Mixed with a uniform ``eps`` over the outcomes.
+    """
+    keep = np.zeros(st.direc_all.shape, dtype=bool)
+    keep[:, members] = True
+    sub = target_set_geometry(st.direc_all, present=keep).subtended_rad
+    run = np.fmax.accumulate(np.where(np.isfinite(sub), sub, -np.inf))
+    run = np.append(run[st.start_pos], run[-1])
+    cdf = norm.cdf((run - prior.centre_rad) / prior.sd_rad)
+    q = np.diff(np.concatenate(([0.0], cdf, [1.0])))
+    p = (1.0 - prior.eps) * q + prior.eps / q.size
+    return -np.log(p) / prior.kappa
+
+
+def _segment(st: _Steps, gain: float, penalty: float, prior: CrossingPrior | None = None
              ) -> tuple[float, list[int], list[int], list[list[int]]]:
     """Cheapest drop order and change points of one trial: (loss, cuts, dropped, sets)."""
     r0 = st.r0
@@ -138,16 +197,25 @@ def _segment(st: _Steps, gain: float, penalty: float
         loss = np.where(np.isfinite(err), 1.0 - np.cos(st.turn - gain * err), 2.0)
         return np.concatenate(([0.0], np.cumsum(loss)))
 
+    def never(members: list[int]) -> float:    # prior cost of no further split
+        if prior is None or len(members) < 2:
+            return 0.0
+        return float(_crossing_cost(st, members, prior)[-1])
+
     base = cum_loss(_goal_errors(st, [r0])[0])
-    best: tuple[float, list[int], list[int], list[list[int]]] = (float(base[-1]), [], [], [r0])
+    best: tuple[float, list[int], list[int], list[list[int]]] = (
+        float(base[-1]) + never(r0), [], [], [r0])
     for order in itertools.permutations(r0, max(len(r0) - 1, 0)):
         sets = [r0]
         for j in order:
             sets.append([m for m in sets[-1] if m != j])
         cums = [cum_loss(e) for e in _goal_errors(st, sets)]
+        costs = None if prior is None else [
+            _crossing_cost(st, s_, prior)[:-1] for s_ in sets[:-1]]
         for n_lv in range(1, len(order) + 1):
-            loss, cuts = _best_segmentation(cums[:n_lv + 1])
-            loss += penalty * n_lv
+            loss, cuts = _best_segmentation(cums[:n_lv + 1],
+                                            None if costs is None else costs[:n_lv])
+            loss += penalty * n_lv + never(sets[n_lv])
             if loss < best[0] - 1e-12:
                 best = (loss, cuts, list(order[:n_lv]), sets[:n_lv + 1])
     return best
@@ -157,7 +225,8 @@ def detect_splits(t_s: ArrayLike, x_mm: ArrayLike, y_mm: ArrayLike, heading_rad:
                   target_x_mm: ArrayLike, target_y_mm: ArrayLike, trial: ArrayLike, *,
                   target_names: tuple[str, ...] | None = None, resample_s: float = 0.1,
                   penalty: float = 0.12, step_max_s: float = 0.6, n_gain_iter: int = 3,
-                  still_rad: float = 1e-6, still_mm: float = 1e-6) -> pd.DataFrame:
+                  still_rad: float = 1e-6, still_mm: float = 1e-6,
+                  prior: CrossingPrior | None = None) -> pd.DataFrame:
     """Detect the split sequence of every trial (method in the module notes).
 
     Parameters
@@ -180,6 +249,10 @@ def detect_splits(t_s: ArrayLike, x_mm: ArrayLike, y_mm: ArrayLike, heading_rad:
         Alternations of the segmentation and the steering gain's least-squares fit.
     still_rad, still_mm : float, default=1e-6
         Heading / position steps at most this large count as "not turning" / "not moving".
+    prior : CrossingPrior, optional
+        Second pass: weigh each change point by the probability that the subtended angle
+        crossed the population threshold there (:func:`crossing_prior`); default none, the
+        steering alone.
 
     Returns
     -------
@@ -191,7 +264,8 @@ def detect_splits(t_s: ArrayLike, x_mm: ArrayLike, y_mm: ArrayLike, heading_rad:
         one and at the committing movement's onset (the crossing lies between the two) and
         their mean, the dropped target, the chosen target (set when one target is left, else
         empty) and the number of targets remaining before the split. Trials without a split
-        have no row.
+        have no row. ``attrs``: ``steering_gain``, ``steering_kappa`` (von Mises concentration
+        of the steering residuals) and ``crossing_prior`` (the prior used, as a dict, or None).
 
     References
     ----------
@@ -202,6 +276,8 @@ def detect_splits(t_s: ArrayLike, x_mm: ArrayLike, y_mm: ArrayLike, heading_rad:
     Jackson, B. et al. (2005). An algorithm for optimal partitioning of data on an interval.
     IEEE Signal Processing Letters 12(2), 105-108 (penalised optimal segmentation by dynamic
     programming). DOI:10.1109/LSP.2001.838216.
+    Robbins, H. (1956). An empirical Bayes approach to statistics. Proc. Third Berkeley Symp.
+    Math. Statist. Prob. 1, 157-163 (the second pass's prior, estimated from the first pass).
     """
     t = np.asarray(t_s, dtype=np.float64)
     x, y = np.asarray(x_mm, dtype=np.float64), np.asarray(y_mm, dtype=np.float64)
@@ -217,13 +293,30 @@ def detect_splits(t_s: ArrayLike, x_mm: ArrayLike, y_mm: ArrayLike, heading_rad:
     trials = [(int(tid), np.flatnonzero(tr == tid)) for tid in np.unique(tr[tr >= 0])]
     steps = [(tid, idx, _trial_steps(idx, t, x, y, hu, tx, ty, turning | moving, step_max_s,
                                      resample_s)) for tid, idx in trials]
+    fits, gain, res = _fit(steps, penalty, n_gain_iter, prior)
+    out = _table(steps, fits, t, x, y, tx, ty, names)
+    out.attrs["steering_gain"] = gain
+    out.attrs["steering_kappa"] = (float(vonmises.fit(res, floc=0.0, fscale=1.0)[0])
+                                   if res.size >= 2 else np.nan)
+    out.attrs["crossing_prior"] = None if prior is None else prior._asdict()
+    return out
+
+
+_MAD_TO_SD = 1.4826   # median absolute deviation -> sd of a normal (common practice)
+_Fit = tuple[float, list[int], list[int], list[list[int]]]
+
+
+def _fit(steps: list[tuple[int, NDArray[np.int64], _Steps]], penalty: float, n_gain_iter: int,
+         prior: CrossingPrior | None) -> tuple[list[_Fit], float, NDArray[np.float64]]:
+    """Segment every trial, alternating with the gain's least-squares fit; also return the
+    steering residuals (turn minus predicted turn) under the final segmentation."""
+    fits: list[_Fit] = []
+    res: list[NDArray[np.float64]] = []
     gain = 1.0
-    fits: list[tuple[float, list[int], list[int], list[list[int]]]] = []
     for it in range(max(n_gain_iter, 1)):
-        fits = [_segment(st, gain, penalty) for _, _, st in steps]
-        if it == n_gain_iter - 1:
-            break
+        fits = [_segment(st, gain, penalty, prior) for _, _, st in steps]
         num = den = 0.0
+        res = []
         for (_, _, st), (_, cuts, _, sets) in zip(steps, fits, strict=True):
             bounds = [0, *cuts, st.turn.size]
             errs = _goal_errors(st, sets)
@@ -233,7 +326,64 @@ def detect_splits(t_s: ArrayLike, x_mm: ArrayLike, y_mm: ArrayLike, heading_rad:
                 ok = np.isfinite(e)
                 num += float(np.sum(tu[ok] * e[ok]))
                 den += float(np.sum(e[ok] ** 2))
+                res.append(wrap_angle(tu[ok] - gain * e[ok]))
+        if it == n_gain_iter - 1:
+            break
         gain = float(np.clip(num / den, 0.1, 2.0)) if den > 0 else 1.0
+    return fits, gain, np.concatenate(res) if res else np.empty(0)
+
+
+def crossing_prior(splits: pd.DataFrame, *, eps: float = 0.05) -> CrossingPrior | None:
+    """Empirical-Bayes prior on the split angle from steering-only splits.
+
+    A population of decisions taken when the subtended angle passes a common threshold
+    ``theta ~ N(centre, sd)``: ``centre`` is the angle inside the most crossing brackets
+    (:func:`critical_angle_brackets`), ``sd`` the normal-consistent median absolute deviation
+    of the bracket midpoints about it (an upper bound: it includes half a bracket's width and
+    the splits dated a movement off), ``kappa`` the steering residuals' concentration found
+    by :func:`detect_splits` (``attrs["steering_kappa"]``).
+
+    Parameters
+    ----------
+    splits : pandas.DataFrame
+        Output of :func:`detect_splits` without a prior.
+    eps : float, default=0.05
+        Weight of a uniform component over a trial's outcomes, so that a split the angle does
+        not explain (one in twenty) is still found where the steering shows it.
+
+    Returns
+    -------
+    CrossingPrior or None
+        None with fewer than two brackets, a zero spread or no residual concentration.
+
+    References
+    ----------
+    Robbins, H. (1956). An empirical Bayes approach to statistics. Proc. Third Berkeley Symp.
+    Math. Statist. Prob. 1, 157-163 (a prior estimated from the population of cases).
+    Mardia, K. V. & Jupp, P. E. (2000). *Directional Statistics*. Wiley, section 5.3 (from
+    memory; von Mises concentration by maximum likelihood, computed with
+    :func:`scipy.stats.vonmises` ``fit``).
+    """
+    lo = splits["subtended_prev_rad"].to_numpy(np.float64)
+    hi = splits["subtended_post_rad"].to_numpy(np.float64)
+    ok = np.isfinite(lo) & np.isfinite(hi)
+    kappa = float(splits.attrs.get("steering_kappa", np.nan))
+    if ok.sum() < 2 or not kappa > 0:
+        return None
+    lo, hi = np.minimum(lo[ok], hi[ok]), np.maximum(lo[ok], hi[ok])
+    centre = float(_max_coverage_centre(lo, hi))
+    sd = float(_MAD_TO_SD * np.median(np.abs(0.5 * (lo + hi) - centre)))
+    if not sd > 0:
+        return None
+    return CrossingPrior(centre, sd, kappa, float(eps))
+
+
+def _table(steps: list[tuple[int, NDArray[np.int64], _Steps]], fits: list[_Fit],
+           t: NDArray[np.float64], x: NDArray[np.float64], y: NDArray[np.float64],
+           tx: NDArray[np.float64], ty: NDArray[np.float64], names: tuple[str, ...]
+           ) -> pd.DataFrame:
+    """The split table (``SPLIT_COLUMNS``) of the segmentations ``fits``."""
+    k = tx.shape[1]
     rows: list[dict[str, object]] = []
     for (tid, idx, st), (_, cuts, dropped, _) in zip(steps, fits, strict=True):
         remaining = list(st.r0)
@@ -261,9 +411,7 @@ def detect_splits(t_s: ArrayLike, x_mm: ArrayLike, y_mm: ArrayLike, heading_rad:
                          "chosen": names[left[0]] if len(left) == 1 else "",
                          "n_remaining": len(remaining)})
             remaining = left
-    out = pd.DataFrame(rows, columns=list(SPLIT_COLUMNS))
-    out.attrs["steering_gain"] = gain
-    return out
+    return pd.DataFrame(rows, columns=list(SPLIT_COLUMNS))
 
 
 def critical_angle(subtended_rad: ArrayLike, *, n_resamples: int = 2000,
@@ -367,67 +515,3 @@ def critical_angle_brackets(low_rad: ArrayLike, high_rad: ArrayLike, *, n_resamp
         low = high = float(out["estimate_rad"])
     out["ci_low_rad"], out["ci_high_rad"] = low, high
     return out
-
-
-class TrajectoryDensity(NamedTuple):
-    """Folded, rotated trajectory histogram (see :func:`trajectory_density`)."""
-
-    counts: NDArray[np.float64]
-    """(n_y_bins, n_x_bins) fraction of samples per bin (rows = y, for image display)."""
-    x_edges_mm: NDArray[np.float64]
-    """lateral |x| bin edges (mm), from 0."""
-    y_edges_mm: NDArray[np.float64]
-    """forward bin edges (mm); the targets' centre of mass lies on +y."""
-    n_trials: int
-
-
-def trajectory_density(x_mm: ArrayLike, y_mm: ArrayLike, target_x_mm: ArrayLike,
-                       target_y_mm: ArrayLike, trial: ArrayLike, *, bin_mm: float = 0.5,
-                       extent_mm: tuple[float, float, float] | None = None
-                       ) -> TrajectoryDensity:
-    """2-D histogram of trajectories in a common frame, folded about the midline.
-
-    Each trial is translated so it starts at the origin and rotated so the centre of mass of
-    the targets present at its first sample lies ahead on +y; then ``x -> |x|`` folds left and
-    right choices together.
-
-    Parameters
-    ----------
-    x_mm, y_mm, trial : array_like of shape (n,)
-    target_x_mm, target_y_mm : array_like of shape (n, n_targets)
-    bin_mm : float, default=0.5
-    extent_mm : (x_max, y_min, y_max), optional
-        Histogram extent; default from the data.
-
-    Returns
-    -------
-    TrajectoryDensity
-    """
-    x, y = np.asarray(x_mm, dtype=np.float64), np.asarray(y_mm, dtype=np.float64)
-    tx = np.atleast_2d(np.asarray(target_x_mm, dtype=np.float64).T).T
-    ty = np.atleast_2d(np.asarray(target_y_mm, dtype=np.float64).T).T
-    tr = np.asarray(trial)
-    valid = tr >= 0
-    ids, inverse = np.unique(tr[valid], return_inverse=True)
-    sel = np.flatnonzero(valid)
-    _, first_pos = np.unique(inverse, return_index=True)
-    first = sel[first_pos]
-    cx = np.nanmean(tx[first], axis=1)
-    cy = np.nanmean(ty[first], axis=1) if tx.shape[1] else np.zeros(ids.size)
-    ang = np.arctan2(cy - y[first], cx - x[first])
-    rot = np.pi / 2 - ang[inverse]
-    dx, dy = x[sel] - x[first][inverse], y[sel] - y[first][inverse]
-    c, s = np.cos(rot), np.sin(rot)
-    fx = np.abs(c * dx - s * dy)
-    fy = s * dx + c * dy
-    if extent_mm is None:
-        x_max = max(float(fx.max(initial=0.0)), bin_mm)
-        y_min, y_max = float(fy.min(initial=0.0)), max(float(fy.max(initial=0.0)), bin_mm)
-    else:
-        x_max, y_min, y_max = extent_mm
-    x_edges = np.arange(0.0, x_max + bin_mm, bin_mm)
-    y_edges = np.arange(np.floor(y_min / bin_mm) * bin_mm, y_max + bin_mm, bin_mm)
-    counts, _, _ = np.histogram2d(fx, fy, bins=(x_edges, y_edges))
-    total = counts.sum()
-    return TrajectoryDensity((counts / total if total else counts).T, x_edges, y_edges,
-                             int(ids.size))

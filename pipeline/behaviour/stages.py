@@ -18,6 +18,7 @@ import numpy as np
 import pandas as pd
 
 from pipeline.behaviour.bouts import detect_turns
+from pipeline.behaviour.density import trajectory_density
 from pipeline.behaviour.geometry import (
     egocentric_bearing,
     target_distance,
@@ -26,8 +27,8 @@ from pipeline.behaviour.geometry import (
 from pipeline.behaviour.log import LogSpec, read_log
 from pipeline.behaviour.splits import (
     critical_angle_brackets,
+    crossing_prior,
     detect_splits,
-    trajectory_density,
 )
 from pipeline.stages import stage
 
@@ -60,11 +61,16 @@ def behaviour_kernels(table: pd.DataFrame, settings: Any) -> dict[str, Any]:
                          bout=table["bout"].to_numpy(), threshold_rad_s=b.turn_threshold_rad_s,
                          release_rad_s=b.turn_release_rad_s,
                          min_duration_s=b.bout_min_duration_s, min_gap_s=b.bout_min_gap_s)
-    splits = detect_splits(t, x, y, h, tx, ty, trial, target_names=tuple(names),
-                           resample_s=b.split_resample_s, penalty=b.split_penalty,
-                           step_max_s=b.split_step_max_s)
-    crit = critical_angle_brackets(splits["subtended_prev_rad"], splits["subtended_post_rad"],
+    opts = {"target_names": tuple(names), "resample_s": b.split_resample_s,
+            "penalty": b.split_penalty, "step_max_s": b.split_step_max_s}
+    steering = detect_splits(t, x, y, h, tx, ty, trial, **opts)
+    # the critical angle from the steering alone: the second pass leans on it
+    crit = critical_angle_brackets(steering["subtended_prev_rad"],
+                                   steering["subtended_post_rad"],
                                    n_resamples=b.bootstrap_resamples, seed=b.seed)
+    prior = crossing_prior(steering, eps=b.split_prior_eps) if b.split_angle_prior else None
+    splits = steering if prior is None else detect_splits(t, x, y, h, tx, ty, trial,
+                                                          prior=prior, **opts)
     dens = trajectory_density(x, y, tx, ty, trial, bin_mm=b.density_bin_mm)
     return {"names": names, "bearing_rad": bearing, "distance_mm": target_distance(x, y, tx, ty),
             "subtended_rad": geo.subtended_rad, "bisector_rad": geo.bisector_rad,
@@ -92,7 +98,9 @@ def run_behaviour(settings: Any, store: Any, compute: Any) -> None:
                   "subtended_rad": "rad", "subtended_prev_rad": "rad",
                   "subtended_post_rad": "rad", "subtended_mid_rad": "rad"},
         "critical_angle": res["critical"],
-        "steering_gain": res["splits"].attrs.get("steering_gain")})
+        "steering_gain": res["splits"].attrs.get("steering_gain"),
+        "steering_kappa": res["splits"].attrs.get("steering_kappa"),
+        "crossing_prior": res["splits"].attrs.get("crossing_prior")})
     dims2 = ("sample", "target")
     store.write_array("behaviour/bearing_rad", res["bearing_rad"], dimension_names=dims2,
                       attrs={"unit": "rad", "targets": names,
