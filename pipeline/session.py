@@ -51,6 +51,7 @@ OUTPUTS: Mapping[str, tuple[str, tuple[str, ...]]] = {
     "behaviour": ("behaviour", ("behaviour.parquet",)),
     "bouts": ("behaviour", ("bouts.parquet",)),
     "splits": ("behaviour", ("splits.parquet",)),
+    "splits_steering": ("behaviour", ("splits_steering.parquet",)),
     "density": ("behaviour", ("session.zarr/behaviour/density",)),
     "density_x_edges_mm": ("behaviour", ("session.zarr/behaviour/x_edges_mm",)),
     "density_y_edges_mm": ("behaviour", ("session.zarr/behaviour/y_edges_mm",)),
@@ -440,6 +441,16 @@ class Session:
     def splits(self) -> pd.DataFrame:
         """Split points per trial: ``split_s`` on the imaging clock (``split_rig_s`` kept)."""
         return self._on_scope_clock(pd.read_parquet(self._need("splits")))
+
+    @property
+    def splits_steering(self) -> pd.DataFrame:
+        """Split points from the steering model alone, without the critical-angle prior.
+
+        ``splits`` are re-timed with the population's critical angle as a prior (when
+        ``behaviour.split_angle_prior`` is on), so their per-trial angles lean towards the
+        population value; study the trial-to-trial spread of split angles on these instead.
+        """
+        return self._on_scope_clock(pd.read_parquet(self._need("splits_steering")))
 
     @property
     def critical_angle(self) -> dict[str, Any]:

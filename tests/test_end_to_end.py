@@ -124,6 +124,19 @@ def test_critical_angle_near_planted(run):
     assert crit["ci_low_rad"] <= crit["estimate_rad"] <= crit["ci_high_rad"]
 
 
+def test_steering_only_splits_are_kept_and_give_the_critical_angle(run):
+    from pipeline.behaviour import critical_angle_brackets
+
+    s = run["session"]
+    steer = s.splits_steering
+    # the critical angle is estimated from the prior-free splits (the re-timed ones lean on it)
+    est = critical_angle_brackets(steer["subtended_prev_rad"], steer["subtended_post_rad"],
+                                  n_resamples=50, seed=0)["estimate_rad"]
+    assert est == pytest.approx(s.critical_angle["estimate_rad"])
+    assert len(steer) >= 0.9 * len(s.splits)
+    assert np.isfinite(steer["split_s"]).all()      # on the imaging clock, like `splits`
+
+
 # ---- decoding -------------------------------------------------------------------------------
 def test_decoder_peaks_at_planted_premotor_lead(run):
     s = run["session"]

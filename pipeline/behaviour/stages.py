@@ -5,6 +5,8 @@ Outputs::
     behaviour.parquet              the validated log (rig clock), units in the Parquet metadata
     bouts.parquet                  one row per turn event (times on the rig clock)
     splits.parquet                 one row per split (times on the rig clock)
+    splits_steering.parquet        the same from the steering model alone (no critical-angle
+                                   prior): the per-trial split angles to study their spread
     session.zarr/behaviour/        bearing_rad, distance_mm (n_samples, n_targets);
                                    subtended_rad, bisector_rad (n_samples,);
                                    density (y, x) with x_edges_mm, y_edges_mm
@@ -74,7 +76,8 @@ def behaviour_kernels(table: pd.DataFrame, settings: Any) -> dict[str, Any]:
     dens = trajectory_density(x, y, tx, ty, trial, bin_mm=b.density_bin_mm)
     return {"names": names, "bearing_rad": bearing, "distance_mm": target_distance(x, y, tx, ty),
             "subtended_rad": geo.subtended_rad, "bisector_rad": geo.bisector_rad,
-            "bouts": bouts, "splits": splits, "critical": crit, "density": dens}
+            "bouts": bouts, "splits": splits, "steering_splits": steering, "critical": crit,
+            "density": dens}
 
 
 @stage("behaviour", sections=("behaviour",), inputs=("behaviour",),
@@ -92,15 +95,21 @@ def run_behaviour(settings: Any, store: Any, compute: Any) -> None:
     store.write_table("bouts.parquet", bouts, metadata={"units": {
         "onset_rig_s": "s", "offset_rig_s": "s", "duration_s": "s", "angle_rad": "rad",
         "peak_rad_s": "rad/s"}, "sign": "positive = left (counter-clockwise)"})
-    splits = res["splits"].rename(columns={"split_s": "split_rig_s", "commit_s": "commit_rig_s"})
-    store.write_table("splits.parquet", splits, metadata={
-        "units": {"split_rig_s": "s", "commit_rig_s": "s", "x_mm": "mm", "y_mm": "mm",
-                  "subtended_rad": "rad", "subtended_prev_rad": "rad",
-                  "subtended_post_rad": "rad", "subtended_mid_rad": "rad"},
-        "critical_angle": res["critical"],
-        "steering_gain": res["splits"].attrs.get("steering_gain"),
-        "steering_kappa": res["splits"].attrs.get("steering_kappa"),
-        "crossing_prior": res["splits"].attrs.get("crossing_prior")})
+    units = {"split_rig_s": "s", "commit_rig_s": "s", "x_mm": "mm", "y_mm": "mm",
+             "subtended_rad": "rad", "subtended_prev_rad": "rad",
+             "subtended_post_rad": "rad", "subtended_mid_rad": "rad"}
+    for name, key, note in (
+            ("splits.parquet", "splits", "timed with the critical-angle prior when "
+             "behaviour.split_angle_prior is on: its angles lean towards the population value"),
+            ("splits_steering.parquet", "steering_splits", "steering model alone (no prior): "
+             "the critical angle is estimated from these; use them for per-trial angles")):
+        tab = res[key]
+        store.write_table(name, tab.rename(columns={"split_s": "split_rig_s",
+                                                    "commit_s": "commit_rig_s"}), metadata={
+            "units": units, "critical_angle": res["critical"], "method": note,
+            "steering_gain": tab.attrs.get("steering_gain"),
+            "steering_kappa": tab.attrs.get("steering_kappa"),
+            "crossing_prior": tab.attrs.get("crossing_prior")})
     dims2 = ("sample", "target")
     store.write_array("behaviour/bearing_rad", res["bearing_rad"], dimension_names=dims2,
                       attrs={"unit": "rad", "targets": names,
@@ -120,6 +129,7 @@ def run_behaviour(settings: Any, store: Any, compute: Any) -> None:
         store.warn(f"{report['repaired_rows']} rig log rows had short gaps repaired by "
                    "interpolation")
     n_trials = int(np.unique(table["trial"][table["trial"] >= 0]).size)
+    splits = res["splits"]
     if len(splits) == 0 and n_trials:
         store.warn(f"no split found in any of {n_trials} trials")
     store.set_info({"log": report, "n_bouts": len(bouts), "n_splits": len(splits),
