@@ -306,10 +306,12 @@ class TuningSettings:
     nuisance_leads_s: tuple[float, ...] = _f((-1.0, -0.5, 0.0, 0.5, 1.0, 1.5, 2.0),
                                              doc="leads of the motor nuisance impulses before "
                                              "each bout onset (negative = after it)", unit="s")
-    attribution: Literal["best", "unique"] = _f(
-        "best", doc="'best': a cell whose bearing terms (all targets together) are significant "
-        "is tuned to the target that alone explains most; 'unique': tuned to every target "
-        "whose unique term is significant")
+    attribution: Literal["consistent", "best", "unique"] = _f(
+        "consistent", doc="'best': a cell whose bearing terms (all targets together) are "
+        "significant is tuned to the target that alone explains most; 'consistent': the same, "
+        "but only when that target also explains most of the variation within trials, "
+        "otherwise the cell is marked ambiguous (tuned to bearing, target not named); "
+        "'unique': tuned to every target whose unique term is significant")
     seed: int = _f(0, doc="seed of the null permutations", ge=0)
 
 

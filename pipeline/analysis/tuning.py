@@ -43,6 +43,7 @@ __all__ = [
     "permutation_bases",
     "tuned_flags",
     "population_summary",
+    "within_trial_alone_r2",
 ]
 
 EPOCHS = ("pre", "between", "post")
@@ -211,6 +212,40 @@ def fit_von_mises(centres_rad, values, *, max_kappa=50.0):
     mu = float(np.angle(np.exp(1j * popt[0])))
     return VonMisesFit(mu, float(popt[1]), float(popt[2]), float(popt[3]), float(se[0]),
                        float(se[1]), True)
+
+
+def within_trial_alone_r2(activity, columns, *, trial, nuisance=None):
+    """Each target's alone R^2 beyond the nuisance and one intercept per trial.
+
+    The same statistic as ``UniqueVariance.alone_r2`` with trial indicators added to the
+    nuisance, so only covariation *within* trials counts. Targets whose bearings differ
+    mostly between trials (which target was chosen, on which side it lay) explain the same
+    trial-to-trial differences of a cell; within a trial their bearings still move apart,
+    which is what this compares. No permutations (an attribution aid, not a test).
+
+    Parameters
+    ----------
+    activity : ndarray of shape (n_samples, n_cells)
+    columns : ndarray of shape (n_samples, n_targets, m)
+        Target columns, as for :func:`unique_variance_test`.
+    trial : ndarray of shape (n_samples,)
+        Trial of each sample.
+    nuisance : ndarray of shape (n_samples, q), optional
+
+    Returns
+    -------
+    ndarray of shape (n_targets, n_cells)
+        Explained sum of squares of target ``k``'s columns after the nuisance and the trial
+        intercepts, over the activity's total sum of squares about its mean.
+    """
+    trial = np.asarray(trial)
+    n = trial.size
+    fe = (trial[:, None] == np.unique(trial)[None, :]).astype(np.float64)
+    bases = permutation_bases(n, perm_index=np.zeros((0, n), dtype=np.int64), columns=columns,
+                              nuisance=nuisance, fixed_nuisance=fe, dtype=np.float64)
+    res = bases.test(np.asarray(activity, dtype=np.float64))
+    assert res.alone_r2 is not None
+    return res.alone_r2
 
 
 def tuned_flags(p, *, q=0.05):
