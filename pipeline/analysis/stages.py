@@ -325,6 +325,11 @@ def _perms(trial, options, *, seed):
 def run_tuning(settings, store, compute):
     """Per cell, target and epoch: tuning curve, preference, unique variance, p, q, flags.
 
+    A cell-epoch is flagged by the joint test of all targets (BH across cells per epoch) and
+    attributed by ``tuning.attribution``: with ``"consistent"`` to the target whose terms
+    alone explain most both over the session and within trials, or marked ``ambiguous``
+    (``tuned`` False on every target row) when the two disagree.
+
     The model of every plane's cells is built once from the behaviour on the rig's samples
     (:func:`pipeline.analysis.regressors.tuning_regressors`: indicator-filtered, epoch-gated
     bearing terms and motor terms) and sampled at that plane's times.
