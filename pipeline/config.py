@@ -292,6 +292,11 @@ class TuningSettings:
     min_epoch_trials: int = _f(8, doc="an epoch is tested only when at least this many trials "
                                "have samples in it (with fewer, whole-trial permutations cannot "
                                "tell the targets' correlated bearings apart)", ge=3)
+    between_epoch: Literal["auto", "separate", "merged"] = _f(
+        "merged", doc="samples between a trial's first and last split (three targets): "
+        "'separate' = their own 'between' epoch; 'merged' = part of 'post' (epochs cut at each "
+        "trial's first split only); 'auto' = merged when fewer than min_epoch_trials trials "
+        "have two splits (a 'between' epoch that could not be tested would lose its samples)")
     null: Literal["trial", "circular"] = _f("trial", doc="trial shuffle or circular shift")
     min_shift_s: float = _f(20.0, doc="minimum circular shift", unit="s", ge=0.0)
     fdr_q: float = _f(0.05, doc="Benjamini-Hochberg level", gt=0.0, lt=1.0)

@@ -354,6 +354,7 @@ def run_tuning(settings, store, compute):
     split_t = _scope_times(store, splits, "split_rig_s")
     split_s = {t: split_t[splits["trial"].to_numpy() == t]
                for t in np.unique(splits["trial"].to_numpy())}
+    split_s = _epoch_splits(split_s, ts.between_epoch, ts.min_epoch_trials)
     bouts = None
     if ts.nuisance and store.has("bouts.parquet"):
         tab = store.read_table("bouts.parquet")
@@ -386,6 +387,21 @@ def run_tuning(settings, store, compute):
     results = compute.map(_tuning_task_star, tasks, path, options, desc="tuning")
     _write_tuning(store, settings, cells, [r for block in results for r in block],
                   reg["epochs"], n_targets)
+
+
+def _epoch_splits(split_s, mode, min_trials):
+    """The splits that cut each trial into epochs.
+
+    ``"merged"`` (or ``"auto"`` with fewer than ``min_trials`` trials of two or more splits)
+    keeps only each trial's first split, so the samples between a three-target trial's splits
+    join ``post`` instead of forming a ``between`` epoch too rare to be tested.
+    """
+    times = {t: np.sort(np.asarray(v, dtype=np.float64)[np.isfinite(v)])
+             for t, v in split_s.items()}
+    n_two = sum(v.size >= 2 for v in times.values())
+    if mode == "separate" or (mode == "auto" and n_two >= min_trials):
+        return split_s
+    return {t: v[:1] for t, v in times.items()}
 
 
 def _tuning_task_star(task, path, options):
