@@ -24,6 +24,7 @@ from scipy.optimize import curve_fit
 from pipeline.analysis.permtest import (
     PermutationBases,
     UniqueVariance,
+    _orth,
     bearing_design,
     permutation_bases,
     unique_variance_test,
@@ -242,13 +243,30 @@ def within_trial_alone_r2(activity, columns, *, trial, nuisance=None):
         intercepts, over the activity's total sum of squares about its mean.
     """
     trial = np.asarray(trial)
+    y = np.asarray(activity, dtype=np.float64)
+    cols = np.asarray(columns, dtype=np.float64)
     n = trial.size
+    if y.ndim != 2 or y.shape[0] != n or cols.ndim != 3 or cols.shape[0] != n:
+        raise InputError(f"within_trial_alone_r2: expected activity ({n}, n_cells) and columns "
+                         f"({n}, n_targets, m) for {n} trial labels, got {y.shape} and "
+                         f"{cols.shape}")
     fe = (trial[:, None] == np.unique(trial)[None, :]).astype(np.float64)
-    bases = permutation_bases(n, perm_index=np.zeros((0, n), dtype=np.int64), columns=columns,
-                              nuisance=nuisance, fixed_nuisance=fe, dtype=np.float64)
-    res = bases.test(np.asarray(activity, dtype=np.float64))
-    assert res.alone_r2 is not None
-    return res.alone_r2
+    z = fe if nuisance is None else np.concatenate(
+        [fe, np.asarray(nuisance, dtype=np.float64).reshape(n, -1)], axis=1)
+    q = _orth(z)                                  # the trial indicators span the intercept
+    yc = y - y.mean(axis=0)
+    sst = np.sum(yc * yc, axis=0)
+    out = np.zeros((cols.shape[1], y.shape[1]))
+    for k in range(cols.shape[1]):
+        x = cols[:, k]
+        r = x - q @ (q.T @ x)
+        # a column the nuisance spans leaves rounding noise, which _orth would scale up
+        r = r[:, np.linalg.norm(r, axis=0) > 1e-8 * np.linalg.norm(x, axis=0)]
+        if r.shape[1]:
+            w = _orth(r)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                out[k] = np.where(sst > 0, np.sum((w.T @ y) ** 2, axis=0) / sst, 0.0)
+    return out
 
 
 def tuned_flags(p, *, q=0.05):
