@@ -147,6 +147,11 @@ def test_within_trial_evidence_names_the_target_confounded_between_trials(rng):
     assert np.allclose(within[1], 0.0, atol=1e-10)   # constant within trials: nothing left
 
 
+def test_within_trial_alone_r2_rejects_mismatched_shapes():
+    with pytest.raises(InputError, match=r"within_trial_alone_r2: expected activity \(50, "):
+        within_trial_alone_r2(np.zeros((49, 3)), np.zeros((50, 2, 2)), trial=np.zeros(50))
+
+
 def _null_activity(rng, n, n_cells, phi):
     e = rng.normal(size=(n, n_cells))
     out = np.empty_like(e)
