@@ -296,6 +296,11 @@ class TuningSettings:
     min_epoch_trials: int = _f(8, doc="an epoch is tested only when at least this many trials "
                                "have samples in it (with fewer, whole-trial permutations cannot "
                                "tell the targets' correlated bearings apart)", ge=3)
+    between_epoch: Literal["auto", "separate", "merged"] = _f(
+        "merged", doc="samples between a trial's first and last split (three targets): "
+        "'separate' = their own 'between' epoch; 'merged' = part of 'post' (epochs cut at each "
+        "trial's first split only); 'auto' = merged when fewer than min_epoch_trials trials "
+        "have two splits (a 'between' epoch that could not be tested would lose its samples)")
     null: Literal["trial", "circular"] = _f("trial", doc="trial shuffle or circular shift")
     min_shift_s: float = _f(20.0, doc="minimum circular shift", unit="s", ge=0.0)
     fdr_q: float = _f(0.05, doc="Benjamini-Hochberg level", gt=0.0, lt=1.0)
@@ -310,10 +315,12 @@ class TuningSettings:
     nuisance_leads_s: tuple[float, ...] = _f((-1.0, -0.5, 0.0, 0.5, 1.0, 1.5, 2.0),
                                              doc="leads of the motor nuisance impulses before "
                                              "each bout onset (negative = after it)", unit="s")
-    attribution: Literal["best", "unique"] = _f(
-        "best", doc="'best': a cell whose bearing terms (all targets together) are significant "
-        "is tuned to the target that alone explains most; 'unique': tuned to every target "
-        "whose unique term is significant")
+    attribution: Literal["consistent", "best", "unique"] = _f(
+        "consistent", doc="'best': a cell whose bearing terms (all targets together) are "
+        "significant is tuned to the target that alone explains most; 'consistent': the same, "
+        "but only when that target also explains most of the variation within trials, "
+        "otherwise the cell is marked ambiguous (tuned to bearing, target not named); "
+        "'unique': tuned to every target whose unique term is significant")
     seed: int = _f(0, doc="seed of the null permutations", ge=0)
 
 

@@ -17,7 +17,7 @@ from pipeline.analysis.regressors import (
     uniform_grid,
     window_epochs,
 )
-from pipeline.analysis.stages import ALIGN, run_decode, run_tuning
+from pipeline.analysis.stages import ALIGN, _epoch_splits, run_decode, run_tuning
 from pipeline.analysis.stats import trial_shuffle_indices
 from pipeline.analysis.tuning import unique_variance_test
 from pipeline.compute import Compute
@@ -222,3 +222,22 @@ def test_decode_stage_without_trials_warns_about_circular_shifts(rng, tmp_path):
     # document and as a stage warning for the report
     assert doc["null_kind"] == "circular-shift"
     assert "Harris 2020" in doc["null_warning"]
+
+
+@pytest.mark.parametrize(("mode", "min_trials", "merged"), [
+    ("merged", 8, True), ("separate", 8, False), ("auto", 3, False), ("auto", 4, True)])
+def test_between_epoch_merges_into_post(mode, min_trials, merged):
+    # three trials with two splits (one written out of order, one with a NaN) and one with
+    # a single split; merged, each trial keeps its first split only, so window_epochs labels
+    # its between samples "post" (demo_volume/README.md: "post" is after the first split)
+    splits = {0: [3.0, 6.0], 1: [14.0], 2: [27.0, 23.0], 3: [33.0, np.nan, 36.0]}
+    got = _epoch_splits(splits, mode, min_trials)
+    if merged:
+        assert {t: list(v) for t, v in got.items()} == {0: [3.0], 1: [14.0], 2: [23.0],
+                                                        3: [33.0]}
+    else:
+        assert got is splits
+    t = np.arange(10.0)
+    ep = window_epochs(t, np.zeros(10, int), {0: got[0]}, pre_s=2.0, post_s=5.0)
+    expected = ["between"] * 3 + ["post"] * 2 if not merged else ["post"] * 5
+    assert list(ep[1:8]) == ["pre", "pre", *expected]

@@ -18,6 +18,7 @@ from pipeline.analysis.tuning import (
     tuned_flags,
     tuning_curves,
     unique_variance_test,
+    within_trial_alone_r2,
 )
 from pipeline.errors import InputError
 
@@ -108,6 +109,47 @@ def test_unique_variance_matches_nested_regressions(rng):
         r2_red = LinearRegression().fit(reduced, y).score(reduced, y)
         assert res.unique_r2[k, 0] == pytest.approx(r2_full - r2_red, abs=1e-10)
     assert res.full_r2[0] == pytest.approx(r2_full, abs=1e-10)
+
+
+def test_within_trial_alone_r2_matches_dummy_regressions(rng):
+    bearings, trials, _ = _behaviour(rng)
+    n = bearings.shape[0]
+    nuis = rng.normal(size=(n, 2))
+    y = np.cos(bearings[:, 1] + 0.3) + 0.3 * trials / N_TRIALS + rng.normal(size=n)
+    got = within_trial_alone_r2(y[:, None], np.stack([np.cos(bearings), np.sin(bearings)], -1),
+                                trial=trials, nuisance=nuis)
+    dummies = (trials[:, None] == np.arange(N_TRIALS)[None, 1:]).astype(float)
+    base = np.column_stack([nuis, dummies])
+    # reference: sklearn LinearRegression R^2 with and without target k's cos/sin columns
+    r2_base = LinearRegression().fit(base, y).score(base, y)
+    for k in range(2):
+        x = np.column_stack([np.cos(bearings[:, k]), np.sin(bearings[:, k]), base])
+        assert got[k, 0] == pytest.approx(LinearRegression().fit(x, y).score(x, y) - r2_base,
+                                          abs=1e-10)
+    assert got[1, 0] > got[0, 0]
+
+
+def test_within_trial_evidence_names_the_target_confounded_between_trials(rng):
+    # target 1 sits still in each trial, at a bearing whose cosine equals the trial's mean
+    # tuning drive of a cell tuned to target 0 (which moves within trials): between trials the
+    # two explain the same differences, within trials only target 0 varies
+    n_tr, length = 30, 80
+    b0 = np.concatenate([_wrap(rng.uniform(-np.pi, np.pi) + np.cumsum(rng.normal(0, .5, length)))
+                         for _ in range(n_tr)])
+    trials = np.repeat(np.arange(n_tr), length)
+    drive = np.exp(2 * (np.cos(b0) - 1))
+    means = np.array([drive[trials == t].mean() for t in range(n_tr)])
+    b1 = np.repeat(np.arccos(2 * (means - means.min()) / np.ptp(means) - 1), length)
+    y = drive[:, None] + 0.2 * rng.normal(size=(b0.size, 40))
+    cols = np.stack([np.column_stack([np.cos(b), np.sin(b)]) for b in (b0, b1)], axis=1)
+    within = within_trial_alone_r2(y, cols, trial=trials)
+    assert np.all(within[0] > within[1])
+    assert np.allclose(within[1], 0.0, atol=1e-10)   # constant within trials: nothing left
+
+
+def test_within_trial_alone_r2_rejects_mismatched_shapes():
+    with pytest.raises(InputError, match=r"within_trial_alone_r2: expected activity \(50, "):
+        within_trial_alone_r2(np.zeros((49, 3)), np.zeros((50, 2, 2)), trial=np.zeros(50))
 
 
 def _null_activity(rng, n, n_cells, phi):

@@ -305,7 +305,11 @@ def permutation_bases(n, bearings_rad=None, *, perm_index, nuisance=None, fixed_
     uniq0, joint0 = _bases(cols[None], q_nuis)
     uniq0, joint0 = uniq0[0].reshape(n, width), joint0[0]
     stack2 = stack.reshape(n, -1)
-    resid_cols = cols.reshape(n, width) - q_nuis @ (q_nuis.T @ cols.reshape(n, width))
+    flat = cols.reshape(n, width)
+    resid_cols = flat - q_nuis @ (q_nuis.T @ flat)
+    # a column the nuisance spans leaves rounding noise, which _orth would scale to unit norm
+    gone = np.linalg.norm(resid_cols, axis=0) <= 1e-8 * np.linalg.norm(flat, axis=0)
+    resid_cols[:, gone] = 0.0
     alone_b = [_orth(resid_cols[:, k * m: (k + 1) * m]) for k in range(n_t)]
     full_x = np.concatenate([cols.reshape(n, width), z_all], axis=1)
     pinv = _coef_operator(full_x)

@@ -43,6 +43,7 @@ from pipeline.analysis.tuning import (
     tuned_flags,
     tuning_curves,
     unique_variance_test,
+    within_trial_alone_r2,
 )
 from pipeline.errors import InputError, StoreError
 from pipeline.stages import stage
@@ -275,6 +276,13 @@ def _tuning_task(rows, activity_path, design, options):
         res = unique_variance_test(y, columns=terms[:, e][:, keep], nuisance=nuis,
                                    fixed_nuisance=fixed, perm_index=perms)
         best = np.asarray(keep)[np.argmax(res.alone_r2, axis=0)]
+        # which target the variation within trials follows best (trial intercepts added; no
+        # permutations): "consistent" attribution needs it to agree with ``best``
+        within = res.alone_r2
+        if options["attribution"] == "consistent" and fixed is None and len(keep) > 1:
+            within = within_trial_alone_r2(y, terms[:, e][:, keep], trial=trial,
+                                           nuisance=nuis)
+        best_within = np.asarray(keep)[np.argmax(within, axis=0)]
         for j, k in enumerate(keep):
             curves, _, centres = tuning_curves(y[inside], design["bearing"][inside, k],
                                                n_bins=options["n_bins"],
@@ -284,6 +292,7 @@ def _tuning_task(rows, activity_path, design, options):
                         "selectivity": sel, "unique_r2": res.unique_r2[j], "p": res.p[j],
                         "p_joint": res.p_joint, "joint_r2": res.joint_r2,
                         "alone_r2": res.alone_r2[j], "best": best == k,
+                        "alone_within_r2": within[j], "best_within": best_within == k,
                         "regression_rad": res.bearing_rad[j], "curves": curves})
     return out
 
@@ -316,6 +325,11 @@ def _perms(trial, options, *, seed):
 def run_tuning(settings, store, compute):
     """Per cell, target and epoch: tuning curve, preference, unique variance, p, q, flags.
 
+    A cell-epoch is flagged by the joint test of all targets (BH across cells per epoch) and
+    attributed by ``tuning.attribution``: with ``"consistent"`` to the target whose terms
+    alone explain most both over the session and within trials, or marked ``ambiguous``
+    (``tuned`` False on every target row) when the two disagree.
+
     The model of every plane's cells is built once from the behaviour on the rig's samples
     (:func:`pipeline.analysis.regressors.tuning_regressors`: indicator-filtered, epoch-gated
     bearing terms and motor terms) and sampled at that plane's times.
@@ -340,6 +354,7 @@ def run_tuning(settings, store, compute):
     split_t = _scope_times(store, splits, "split_rig_s")
     split_s = {t: split_t[splits["trial"].to_numpy() == t]
                for t in np.unique(splits["trial"].to_numpy())}
+    split_s = _epoch_splits(split_s, ts.between_epoch, ts.min_epoch_trials)
     bouts = None
     if ts.nuisance and store.has("bouts.parquet"):
         tab = store.read_table("bouts.parquet")
@@ -352,6 +367,7 @@ def run_tuning(settings, store, compute):
     options = {"n_perm": ts.n_permutations, "seed": ts.seed, "pre_s": ts.pre_window_s,
                "null": ts.null, "min_shift": max(1, round(ts.min_shift_s * im.volume_rate_hz)),
                "post_s": ts.post_window_s, "trial_intercepts": ts.trial_intercepts,
+               "attribution": ts.attribution,
                "guard_s": ts.split_guard_s,
                "min_epoch_trials": ts.min_epoch_trials,
                "n_bins": ts.n_bins,
@@ -373,6 +389,21 @@ def run_tuning(settings, store, compute):
                   reg["epochs"], n_targets)
 
 
+def _epoch_splits(split_s, mode, min_trials):
+    """The splits that cut each trial into epochs.
+
+    ``"merged"`` (or ``"auto"`` with fewer than ``min_trials`` trials of two or more splits)
+    keeps only each trial's first split, so the samples between a three-target trial's splits
+    join ``post`` instead of forming a ``between`` epoch too rare to be tested.
+    """
+    times = {t: np.sort(np.asarray(v, dtype=np.float64)[np.isfinite(v)])
+             for t, v in split_s.items()}
+    n_two = sum(v.size >= 2 for v in times.values())
+    if mode == "separate" or (mode == "auto" and n_two >= min_trials):
+        return split_s
+    return {t: v[:1] for t, v in times.items()}
+
+
 def _tuning_task_star(task, path, options):
     rows, design = task
     return _tuning_task(rows, path, design, options)
@@ -389,7 +420,7 @@ def _write_tuning(store, settings, cells, parts, epochs, n_targets):
     names = _target_names(settings, n_targets)
     n_cells = len(cells)
     fields = ("preferred_rad", "selectivity", "unique_r2", "p", "regression_rad", "p_joint",
-              "joint_r2", "alone_r2", "best")
+              "joint_r2", "alone_r2", "best", "alone_within_r2", "best_within")
     grid = {f: np.full((n_targets, len(epochs), n_cells), np.nan) for f in fields}
     curves = np.full((n_targets, len(epochs), ts.n_bins, n_cells), np.nan, dtype=np.float32)
     centres = np.linspace(-np.pi, np.pi, ts.n_bins + 1)[:-1] + np.pi / ts.n_bins
@@ -404,9 +435,17 @@ def _write_tuning(store, settings, cells, parts, epochs, n_targets):
                         axis=0)
     p_joint = np.where(np.isfinite(p_joint), p_joint, np.nan)
     q_joint = np.broadcast_to(tuned_flags(p_joint, q=ts.fdr_q)[0], grid["p"].shape)
-    if ts.attribution == "best":
+    ambiguous = np.zeros(grid["p"].shape, dtype=bool)
+    if ts.attribution in ("best", "consistent"):
         qv = np.where(np.isfinite(grid["p"]), q_joint, np.nan)
-        tuned = np.isfinite(qv) & (qv <= ts.fdr_q) & (grid["best"] == 1)
+        joint = np.isfinite(qv) & (qv <= ts.fdr_q)
+        tuned = joint & (grid["best"] == 1)
+        if ts.attribution == "consistent":
+            # a target is named only when the evidence between and within trials agrees;
+            # otherwise every row of the (epoch, cell) is marked ambiguous, none tuned
+            agree = np.any((grid["best"] == 1) & (grid["best_within"] == 1), axis=0)
+            ambiguous = joint & ~agree[None]
+            tuned &= agree[None]
     else:
         qv = q_unique
         tuned = np.isfinite(qv) & (qv <= ts.fdr_q)
@@ -421,9 +460,11 @@ def _write_tuning(store, settings, cells, parts, epochs, n_targets):
         **{c: cells[c].to_numpy(dtype=np.float64)[c_idx] for c in ("z_um", "y_um", "x_um")},
         "target": np.asarray(names, dtype=object)[k_idx],
         "epoch": np.asarray(epochs, dtype=object)[e_idx],
-        **{f: grid[f][k_idx, e_idx, c_idx] for f in fields if f != "best"},
+        **{f: grid[f][k_idx, e_idx, c_idx] for f in fields
+           if f not in ("best", "best_within")},
         "q_unique": q_unique[k_idx, e_idx, c_idx], "q_joint": q_joint[k_idx, e_idx, c_idx],
         "q": qv[k_idx, e_idx, c_idx], "tuned": tuned[k_idx, e_idx, c_idx],
+        "ambiguous": ambiguous[k_idx, e_idx, c_idx],
         "vm_mu_rad": vm_mu[k_idx, e_idx, c_idx], "vm_kappa": vm_kappa[k_idx, e_idx, c_idx]})
     store.write_table("tuning.parquet", table, metadata={
         "units": {"preferred_rad": "rad", "regression_rad": "rad", "vm_mu_rad": "rad",
@@ -434,7 +475,9 @@ def _write_tuning(store, settings, cells, parts, epochs, n_targets):
                                                       "bin_centres_rad": centres.tolist()},
                       dimension_names=("target", "epoch", "bin", "cell"))
     summary, switches = population_summary(tuned, targets=names, epochs=epochs)
-    store.set_info({"fractions": summary, "switches": switches})
+    # cells whose bearing terms are significant but whose target cannot be named, per epoch
+    n_ambiguous = {e: int(ambiguous[:, j].any(axis=0).sum()) for j, e in enumerate(epochs)}
+    store.set_info({"fractions": summary, "switches": switches, "ambiguous": n_ambiguous})
     _paint(store, cells, grid, tuned, names, epochs)
 
 

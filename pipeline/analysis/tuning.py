@@ -8,7 +8,10 @@ Two views of each cell, per target and epoch:
   together plus nuisance terms (:mod:`pipeline.analysis.permtest`; the stage builds the terms
   with :mod:`pipeline.analysis.regressors`): the joint test of all targets, each target's
   unique explained variance, and a permutation null (whole trials, or circular shifts) that
-  keeps each cell's autocorrelation, computed as GEMMs.
+  keeps each cell's autocorrelation, computed as GEMMs;
+* attribution: which target a significant cell follows, from each target's alone R^2 over
+  the whole session and within trials (:func:`within_trial_alone_r2`); the stage names a
+  target only when the two agree and marks the cell ambiguous otherwise.
 """
 
 from __future__ import annotations
@@ -21,6 +24,7 @@ from scipy.optimize import curve_fit
 from pipeline.analysis.permtest import (
     PermutationBases,
     UniqueVariance,
+    _orth,
     bearing_design,
     permutation_bases,
     unique_variance_test,
@@ -43,6 +47,7 @@ __all__ = [
     "permutation_bases",
     "tuned_flags",
     "population_summary",
+    "within_trial_alone_r2",
 ]
 
 EPOCHS = ("pre", "between", "post")
@@ -211,6 +216,57 @@ def fit_von_mises(centres_rad, values, *, max_kappa=50.0):
     mu = float(np.angle(np.exp(1j * popt[0])))
     return VonMisesFit(mu, float(popt[1]), float(popt[2]), float(popt[3]), float(se[0]),
                        float(se[1]), True)
+
+
+def within_trial_alone_r2(activity, columns, *, trial, nuisance=None):
+    """Each target's alone R^2 beyond the nuisance and one intercept per trial.
+
+    The same statistic as ``UniqueVariance.alone_r2`` with trial indicators added to the
+    nuisance, so only covariation *within* trials counts. Targets whose bearings differ
+    mostly between trials (which target was chosen, on which side it lay) explain the same
+    trial-to-trial differences of a cell; within a trial their bearings still move apart,
+    which is what this compares. No permutations (an attribution aid, not a test).
+
+    Parameters
+    ----------
+    activity : ndarray of shape (n_samples, n_cells)
+    columns : ndarray of shape (n_samples, n_targets, m)
+        Target columns, as for :func:`unique_variance_test`.
+    trial : ndarray of shape (n_samples,)
+        Trial of each sample.
+    nuisance : ndarray of shape (n_samples, q), optional
+
+    Returns
+    -------
+    ndarray of shape (n_targets, n_cells)
+        Explained sum of squares of target ``k``'s columns after the nuisance and the trial
+        intercepts, over the activity's total sum of squares about its mean.
+    """
+    trial = np.asarray(trial)
+    y = np.asarray(activity, dtype=np.float64)
+    cols = np.asarray(columns, dtype=np.float64)
+    n = trial.size
+    if y.ndim != 2 or y.shape[0] != n or cols.ndim != 3 or cols.shape[0] != n:
+        raise InputError(f"within_trial_alone_r2: expected activity ({n}, n_cells) and columns "
+                         f"({n}, n_targets, m) for {n} trial labels, got {y.shape} and "
+                         f"{cols.shape}")
+    fe = (trial[:, None] == np.unique(trial)[None, :]).astype(np.float64)
+    z = fe if nuisance is None else np.concatenate(
+        [fe, np.asarray(nuisance, dtype=np.float64).reshape(n, -1)], axis=1)
+    q = _orth(z)                                  # the trial indicators span the intercept
+    yc = y - y.mean(axis=0)
+    sst = np.sum(yc * yc, axis=0)
+    out = np.zeros((cols.shape[1], y.shape[1]))
+    for k in range(cols.shape[1]):
+        x = cols[:, k]
+        r = x - q @ (q.T @ x)
+        # a column the nuisance spans leaves rounding noise, which _orth would scale up
+        r = r[:, np.linalg.norm(r, axis=0) > 1e-8 * np.linalg.norm(x, axis=0)]
+        if r.shape[1]:
+            w = _orth(r)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                out[k] = np.where(sst > 0, np.sum((w.T @ y) ** 2, axis=0) / sst, 0.0)
+    return out
 
 
 def tuned_flags(p, *, q=0.05):
