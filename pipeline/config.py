@@ -297,7 +297,7 @@ class TuningSettings:
                                "have samples in it (with fewer, whole-trial permutations cannot "
                                "tell the targets' correlated bearings apart)", ge=3)
     between_epoch: Literal["auto", "separate", "merged"] = _f(
-        "merged", doc="samples between a trial's first and last split (three targets): "
+        "auto", doc="samples between a trial's first and last split (three targets): "
         "'separate' = their own 'between' epoch; 'merged' = part of 'post' (epochs cut at each "
         "trial's first split only); 'auto' = merged when fewer than min_epoch_trials trials "
         "have two splits (a 'between' epoch that could not be tested would lose its samples)")

@@ -355,6 +355,8 @@ def run_tuning(settings, store, compute):
     split_s = {t: split_t[splits["trial"].to_numpy() == t]
                for t in np.unique(splits["trial"].to_numpy())}
     split_s = _epoch_splits(split_s, ts.between_epoch, ts.min_epoch_trials)
+    # recorded: whether a three-target trial's stretch between its splits is its own epoch
+    between = "separate" if any(np.size(v) >= 2 for v in split_s.values()) else "merged into post"
     bouts = None
     if ts.nuisance and store.has("bouts.parquet"):
         tab = store.read_table("bouts.parquet")
@@ -386,7 +388,7 @@ def run_tuning(settings, store, compute):
             tasks.append((rows[a: a + ts.block_cells], design))
     results = compute.map(_tuning_task_star, tasks, path, options, desc="tuning")
     _write_tuning(store, settings, cells, [r for block in results for r in block],
-                  reg["epochs"], n_targets)
+                  reg["epochs"], n_targets, between=between)
 
 
 def _epoch_splits(split_s, mode, min_trials):
@@ -415,7 +417,7 @@ def _target_names(settings, n_targets):
     return names if len(names) == n_targets else [f"t{k}" for k in range(n_targets)]
 
 
-def _write_tuning(store, settings, cells, parts, epochs, n_targets):
+def _write_tuning(store, settings, cells, parts, epochs, n_targets, between="separate"):
     ts = settings.tuning
     names = _target_names(settings, n_targets)
     n_cells = len(cells)
@@ -477,7 +479,8 @@ def _write_tuning(store, settings, cells, parts, epochs, n_targets):
     summary, switches = population_summary(tuned, targets=names, epochs=epochs)
     # cells whose bearing terms are significant but whose target cannot be named, per epoch
     n_ambiguous = {e: int(ambiguous[:, j].any(axis=0).sum()) for j, e in enumerate(epochs)}
-    store.set_info({"fractions": summary, "switches": switches, "ambiguous": n_ambiguous})
+    store.set_info({"fractions": summary, "switches": switches, "ambiguous": n_ambiguous,
+                    "between_epoch": between})
     _paint(store, cells, grid, tuned, names, epochs)
 
 

@@ -353,6 +353,10 @@ def _tuning(ctx: _Ctx) -> str:
             amb = (" Not shown: cells tuned to bearing whose target could not be named (the "
                    "target explaining most over the session and within trials differ): "
                    + ", ".join(f"{n} {e}" for e, n in counts.items()) + ".")
+    between = s.record("tuning").get("info", {}).get("between_epoch")
+    if between == "merged into post":
+        amb += (" Epochs are cut at each trial's first split: too few trials had two splits "
+                "to test the stretch between them on its own, so it is part of 'post'.")
     out.append(ctx.figure("fraction_tuned", fig,
                           "Fraction of cells tuned to each target's bearing before and after "
                           "the split (Benjamini-Hochberg q below the configured level), with "
