@@ -107,7 +107,7 @@ def _path_task(group: tuple[int, int], vpath: str, ref_path: str, weights_path: 
     reference = np.asarray(zarr.open_array(ref_path, mode="r")[...])
     prep = prepare_reference(reference, **options)
     w = _cached_weights(weights_path)
-    acc = SummaryAccumulator.empty(reference.shape, offset=reference)
+    acc = SummaryAccumulator.empty(reference.shape, offset=reference, dtype="float32")
     n = group[1] - group[0]
     shifts = np.zeros((n, 3))
     cell = np.empty((w.cell.shape[0], n), np.float32)
