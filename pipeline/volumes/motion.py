@@ -510,11 +510,21 @@ def registered_sum(volumes: Iterable[np.ndarray], prepared: PreparedReference, *
     shifts_vox : ndarray of shape (n, 3)
     quality : ndarray of shape (n,)
     """
+    from pipeline.volumes.summary_kernels import add_shifted
+
     total = np.zeros(prepared.source_shape, dtype=np.float64)
+    zero = np.zeros((1, 1, 1), np.float32)
     shifts, quals = [], []
     for v in volumes:
         s, q = register_volume(v, prepared, upsample=upsample)
-        total += shift_volume(v, s)
+        # total += shift_volume(v, s), bit for bit, without the registered copy
+        d = np.asarray(s, dtype=np.float64)
+        k = np.floor(d).astype(np.int64)
+        vol = np.asarray(v)
+        if not (np.issubdtype(vol.dtype, np.integer) or np.issubdtype(vol.dtype, np.floating)):
+            vol = vol.astype(np.float32)
+        add_shifted(np.ascontiguousarray(vol), k, (d - k).astype(np.float32),
+                    np.broadcast_to(zero, vol.shape), total)
         shifts.append(s)
         quals.append(q)
     return total, np.asarray(shifts).reshape(-1, 3), np.asarray(quals)

