@@ -116,9 +116,21 @@ def _bin(volume: np.ndarray, b: int) -> np.ndarray:
 def _bin_yx(v, b, out):  # pragma: no cover - compiled
     """Mean of ``b x b`` blocks in y and x, read straight from the input dtype (float32 sums
     in the order i, j). Hand-written: converting a 30 x 256 x 256 uint16 volume to float32
-    first and summing strided views cost 2.8 ms of CPU, this loop 1.5 ms (measured)."""
+    first and summing strided views cost 2.8 ms of CPU, this loop 1.5 ms, and unrolled for
+    b = 2 (vectorised by the compiler; bit-identical) 0.24 ms (measured, one core)."""
     nz, nyb, nxb = out.shape
     scale = np.float32(1.0 / (b * b))
+    if b == 2:  # the same additions in the same order, unrolled: 1.38 -> 0.24 ms
+        for z in range(nz):
+            for yb in range(nyb):
+                r0 = v[z, 2 * yb]
+                r1 = v[z, 2 * yb + 1]
+                for xb in range(nxb):
+                    t = np.float32(r0[2 * xb]) + np.float32(r0[2 * xb + 1])
+                    t = t + np.float32(r1[2 * xb])
+                    t = t + np.float32(r1[2 * xb + 1])
+                    out[z, yb, xb] = t * scale
+        return
     for z in range(nz):
         for yb in range(nyb):
             for xb in range(nxb):
