@@ -386,7 +386,11 @@ def run(quick: bool) -> list[dict]:
         vpath, truth, labels = make_session(work, n_vol, shape)
         truth = truth - truth[0]  # the reference is volume 0
         t_read = min(_read_pass(vpath) for _ in range(2))
+        # best of 2 (the machine is shared; the CPU time is the smaller of the two runs)
         t_ours, ours = our_path(vpath, labels, work)
+        cpu_first = _CPU["ours"]
+        t_again, _ = our_path(vpath, labels, work)
+        t_ours, _CPU["ours"] = min(t_ours, t_again), min(cpu_first, _CPU["ours"])
         err = float(np.abs(ours["shifts"] - truth).max())
         rows.append({
             "name": f"imaging path / one read pass ({n_vol} x {'x'.join(map(str, shape))})",
@@ -399,6 +403,9 @@ def run(quick: bool) -> list[dict]:
         })
         stage_passes(vpath, labels, work, n_vol=2)  # warm up (compiled kernels), untimed
         t_stages = stage_passes(vpath, labels, work)
+        cpu_first = _CPU["stages"]
+        t_stages = min(t_stages, stage_passes(vpath, labels, work))  # best of 2
+        _CPU["stages"] = min(cpu_first, _CPU["stages"])
         rows.append({
             "name": "imaging stages as the pipeline runs them / one read pass",
             "figure": t_stages, "baseline": t_read, "ratio": t_stages / t_read, "goal": 3.0,
