@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 import warnings
 
 import numpy as np
@@ -65,3 +66,17 @@ def test_slurm_job_script_built_without_submitting() -> None:
     assert "#SBATCH -A lab42" in script
     assert "#SBATCH -t 02:00:00" in script
     assert "--nworkers 2" in script or "--nprocs 2" in script
+
+
+def test_local_cluster_workers_keep_the_dynamic_malloc_thresholds() -> None:
+    import dask
+
+    if "MALLOC_TRIM_THRESHOLD_" in os.environ:
+        pytest.skip("the variable is set in this environment and is inherited")
+    with Compute(ComputeSettings(scheduler="local-cluster", workers=1), quiet=True) as compute:
+        seen = compute.client.run(os.environ.get, "MALLOC_TRIM_THRESHOLD_")
+    # distributed's default config would set it to 65536 in each worker (its documented
+    # distributed.nanny.pre-spawn-environ); ours leaves it unset, and the client's config
+    # keeps its default
+    assert list(seen.values()) == [None]
+    assert dask.config.get("distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_") == 65536

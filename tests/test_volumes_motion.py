@@ -284,3 +284,45 @@ def test_linear_shift_matches_scipy(rng: np.random.Generator, shift) -> None:
     got = shift_volume(v, shift)
     assert got.dtype == np.float32 and got is not v
     np.testing.assert_allclose(got, expected, rtol=0, atol=1e-3)
+
+
+def test_first_pass_on_coarser_planes_keeps_the_accuracy(rng: np.random.Generator) -> None:
+    big = _blobs(rng, (24, 144, 144), n=2800)
+    ref = _moved_crop(big, np.zeros(3))  # 16 x 128 x 128: the first pass runs on 64 x 64
+    prep = prepare_reference(ref, highpass_sigma_vox=(0, 4, 4))
+    single = prepare_reference(ref, highpass_sigma_vox=(0, 4, 4), first_pass_bin=1)
+    assert prep.first is not None and prep.first.shape[1:] == (64, 64)
+    assert single.first is None
+    for _ in range(3):
+        # z within 1.5 of 16 planes: larger z shifts bring new planes into view and pull
+        # both estimates (with or without the coarse first pass alike) by > 0.1 voxel
+        planted = rng.uniform([-1.5, -3.5, -3.5], [1.5, 3.5, 3.5])
+        moving = _moved_crop(big, planted)
+        est, _ = register_volume(moving, prep, upsample=20)
+        one, _ = register_volume(moving, single, upsample=20)
+        # reference: scipy.ndimage.shift (cubic spline) planted the shift; 0.1 voxel as in
+        # the field-of-view test above (content entering the field of view)
+        np.testing.assert_allclose(est, planted, atol=0.1)
+        np.testing.assert_allclose(est, one, atol=0.06)  # same peak, 1/20 voxel grid
+    with pytest.raises(ConfigError, match=r"first_pass_bin = 0: expected an integer >= 1"):
+        prepare_reference(ref, first_pass_bin=0)
+
+
+def test_registered_sum_equals_the_sum_of_registered_copies(rng: np.random.Generator) -> None:
+    from pipeline.volumes.motion import registered_sum
+
+    big = _blobs(rng, (24, 64, 64), n=300)
+    ref = _moved_crop(big, np.zeros(3))
+    vols = [_moved_crop(big, s).astype(np.uint16) for s in rng.uniform(-2, 2, (4, 3))]
+    vols.append(ref.astype(np.float32))  # a zero shift and a float input
+    prep = prepare_reference(ref, highpass_sigma_vox=(0, 4, 4))
+    total, shifts, _ = registered_sum(vols, prep)
+    copies = np.zeros(ref.shape)
+    for v, s in zip(vols, shifts, strict=True):
+        copies += shift_volume(v, s)
+    # the fused sum makes no registered copy but must add the same float32 values
+    np.testing.assert_array_equal(total, copies)
+    # and the copy itself is scipy.ndimage.shift (order 1, edges extended) up to rounding
+    np.testing.assert_allclose(shift_volume(vols[0], shifts[0]),
+                               ndi.shift(vols[0].astype(np.float32), -shifts[0], order=1,
+                                         mode="nearest", prefilter=False), rtol=1e-5, atol=0.02)

@@ -187,3 +187,32 @@ def test_spilled_sums_merge_like_the_arrays(rng: np.random.Generator, tmp_path) 
     other = SummaryAccumulator.empty((2, 4, 5)).spill(str(tmp_path / "other"))
     with pytest.raises(ConfigError, match=r"cannot merge accumulators of shape \(2, 4, 5\)"):
         via_file.merge_spilled(other)
+
+
+def test_float32_blocks_within_the_summation_bound(rng: np.random.Generator) -> None:
+    from pipeline.volumes.summary import BLOCK32_MAX_VOLUMES
+
+    stack = rng.normal(800, 60, (BLOCK32_MAX_VOLUMES + 8, *SHAPE)).astype(np.float32)
+    offset = stack[:4].mean(0)
+    exact = SummaryAccumulator.empty(SHAPE, offset=offset)
+    block = SummaryAccumulator.empty(SHAPE, offset=offset, dtype="float32")
+    for v in stack[:BLOCK32_MAX_VOLUMES]:
+        exact.update(v)
+        block.update(v)
+    assert block.sum_xx.dtype == np.float32
+    # recursive summation bound (Higham, Accuracy and Stability of Numerical Algorithms,
+    # 2nd ed., eq. 4.4): |error| <= (m - 1) u sum |terms| + rounding of the stored sum;
+    # sum |x - offset| is bounded by m * max |x - offset|
+    u, m = 2.0**-24, BLOCK32_MAX_VOLUMES
+    dev = np.abs(stack[:m].astype(np.float64) - offset).max(0)
+    for name, scale in (("sum_x", dev), ("sum_xx", dev**2)):
+        err = np.abs(getattr(block, name) - getattr(exact, name))
+        assert np.all(err <= 2 * m * u * m * scale + 1e-12)
+    total = SummaryAccumulator.empty(SHAPE, offset=offset).merge(block)
+    for a, b in zip(total.finalize(), exact.finalize(), strict=True):
+        np.testing.assert_allclose(a, b, rtol=1e-5, atol=1e-5)
+    with pytest.raises(ConfigError, match=r"float32 block accumulator holds at most 64 "
+                                          r"volumes; got 65"):
+        block.update(stack[-1])
+    with pytest.raises(ConfigError, match=r"dtype = 'int8': expected float32 or float64"):
+        SummaryAccumulator.empty(SHAPE, dtype="int8")

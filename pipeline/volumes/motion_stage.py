@@ -35,7 +35,7 @@ from pipeline.volumes.motion import (
     registered_sum,
 )
 from pipeline.volumes.motion_flags import MotionFlags, flag_motion
-from pipeline.volumes.summary import SpilledSums, SummaryAccumulator
+from pipeline.volumes.summary import BLOCK32_MAX_VOLUMES, SpilledSums, SummaryAccumulator
 
 __all__ = ["run_motion", "estimation_options", "volume_groups"]
 
@@ -102,22 +102,39 @@ def _register_group(group: tuple[int, int], volumes_path: str, reference_path: s
                     ) -> tuple[list[np.ndarray], list[np.ndarray],
                                SummaryAccumulator | SpilledSums]:
     """Task: shifts and quality of volumes ``start..stop-1`` and their summary accumulator
-    (written under ``spill_dir`` and returned as a handle when given)."""
+    (written under ``spill_dir`` and returned as a handle when given).
+
+    The sums are float32 over runs of at most ``BLOCK32_MAX_VOLUMES`` volumes (a group of
+    ``motion.block_volumes <= 64`` is one run and is returned as float32); longer groups add
+    their runs into float64 sums in volume order (see the numerical note of
+    :mod:`pipeline.volumes.summary`)."""
     arr = zarr.open_array(volumes_path, mode="r")
     reference = _get(zarr.open_array(reference_path, mode="r"))
     prep = prepare_reference(reference, **options) if enabled else None
-    acc = SummaryAccumulator.empty(reference.shape, neighbourhood=neighbourhood,
-                                   offset=reference)
+
+    def block() -> SummaryAccumulator:
+        return SummaryAccumulator.empty(reference.shape, neighbourhood=neighbourhood,
+                                        offset=reference, dtype="float32")
+
+    acc = block()
+    total: SummaryAccumulator | None = None
     n = group[1] - group[0]
     shifts = np.zeros((n, 3))
     quality = np.ones(n)
     for i, t in enumerate(range(*group)):
+        if acc.n == BLOCK32_MAX_VOLUMES:
+            total = (SummaryAccumulator.empty(reference.shape, neighbourhood=neighbourhood,
+                                              offset=reference) if total is None else total)
+            total.merge(acc)
+            acc = block()
         vol = _get(arr, t)
         if prep is not None:
             shifts[i], quality[i] = register_volume(vol, prep, upsample=upsample)
             acc.update_shifted(vol, shifts[i])
         else:
             acc.update(vol)
+    if total is not None:
+        acc = total.merge(acc)
     if spill_dir is not None:
         return [shifts], [quality], acc.spill(str(Path(spill_dir) / f"sums_{group[0]}"))
     return [shifts], [quality], acc
@@ -128,6 +145,9 @@ def _resolve(acc: SummaryAccumulator | SpilledSums, offset: np.ndarray | None,
     if isinstance(acc, SpilledSums):
         return SummaryAccumulator.empty(acc.shape, neighbourhood=neighbourhood,
                                         offset=offset).merge_spilled(acc)
+    if acc.sum_x.dtype != np.float64:  # a task's float32 block starts the float64 total
+        return SummaryAccumulator.empty(acc.shape, neighbourhood=acc.neighbourhood,
+                                        offset=acc.offset).merge(acc)
     return acc
 
 

@@ -256,22 +256,60 @@ def _gather_trilinear(volume, coords, base, frac, out):  # pragma: no cover - co
     skipped. Hand-written because the NumPy version built 8 index arrays and 8 float64
     gathers of ``n_sampled`` values per volume: :func:`sample_volume` takes 35 ms with it and
     8 ms with this loop (bit-identical results) for 573k sampled voxels of a 30 x 256 x 256
-    uint16 volume (CPU time, one core).
+    uint16 volume (CPU time, one core). The clipped tap indices come from one lookup table
+    per axis and the 8 weights are formed once per volume (the same products, so the same
+    values, bit-identical): 4.8 -> 3.1 ms of CPU for the gather of 573k sampled voxels with
+    all three fractions non-zero (measured, one core, best of 5).
     """
     nz, ny, nx = volume.shape
     n_taps_z = 2 if frac[0] > 0 else 1
     n_taps_y = 2 if frac[1] > 0 else 1
     n_taps_x = 2 if frac[2] > 0 else 1
+    tz = np.empty((2, nz), np.int64)
+    ty = np.empty((2, ny), np.int64)
+    tx = np.empty((2, nx), np.int64)
+    for a in range(2):
+        for i in range(nz):
+            tz[a, i] = min(max(i + base[0] + a, 0), nz - 1)
+        for i in range(ny):
+            ty[a, i] = min(max(i + base[1] + a, 0), ny - 1)
+        for i in range(nx):
+            tx[a, i] = min(max(i + base[2] + a, 0), nx - 1)
+    w = np.empty((2, 2, 2))
+    for a in range(2):
+        wz = frac[0] if a == 1 else 1.0 - frac[0]
+        for b in range(2):
+            wy = frac[1] if b == 1 else 1.0 - frac[1]
+            for c in range(2):
+                wx = frac[2] if c == 1 else 1.0 - frac[2]
+                w[a, b, c] = wz * wy * wx
+    if n_taps_z == 2 and n_taps_y == 2 and n_taps_x == 2:
+        w0, w1, w2, w3 = w[0, 0, 0], w[0, 0, 1], w[0, 1, 0], w[0, 1, 1]
+        w4, w5, w6, w7 = w[1, 0, 0], w[1, 0, 1], w[1, 1, 0], w[1, 1, 1]
+        for j in range(coords.shape[1]):
+            z0 = tz[0, coords[0, j]]
+            z1 = tz[1, coords[0, j]]
+            y0 = ty[0, coords[1, j]]
+            y1 = ty[1, coords[1, j]]
+            x0 = tx[0, coords[2, j]]
+            x1 = tx[1, coords[2, j]]
+            acc = 0.0
+            acc += w0 * np.float64(volume[z0, y0, x0])
+            acc += w1 * np.float64(volume[z0, y0, x1])
+            acc += w2 * np.float64(volume[z0, y1, x0])
+            acc += w3 * np.float64(volume[z0, y1, x1])
+            acc += w4 * np.float64(volume[z1, y0, x0])
+            acc += w5 * np.float64(volume[z1, y0, x1])
+            acc += w6 * np.float64(volume[z1, y1, x0])
+            acc += w7 * np.float64(volume[z1, y1, x1])
+            out[j] = acc
+        return
     for j in range(coords.shape[1]):
         acc = 0.0
         for a in range(n_taps_z):
-            iz = min(max(coords[0, j] + base[0] + a, 0), nz - 1)
-            wz = frac[0] if a == 1 else 1.0 - frac[0]
+            iz = tz[a, coords[0, j]]
             for b in range(n_taps_y):
-                iy = min(max(coords[1, j] + base[1] + b, 0), ny - 1)
-                wy = frac[1] if b == 1 else 1.0 - frac[1]
+                iy = ty[b, coords[1, j]]
                 for c in range(n_taps_x):
-                    ix = min(max(coords[2, j] + base[2] + c, 0), nx - 1)
-                    wx = frac[2] if c == 1 else 1.0 - frac[2]
-                    acc += (wz * wy * wx) * np.float64(volume[iz, iy, ix])
+                    acc += w[a, b, c] * np.float64(volume[iz, iy, tx[c, coords[2, j]]])
         out[j] = acc

@@ -9,13 +9,25 @@ never reads the volumes again.
 
 Speed: :meth:`SummaryAccumulator.update_shifted` registers a raw volume (trilinear, the same
 float32 arithmetic as :func:`pipeline.volumes.motion.shift_volume`), forms the neighbour mean
-and adds the products in one compiled pass, plane by plane, so no registered or float64 copy
-of the volume is ever made (see the kernel's docstring for the measured gain).
+and adds the products in one compiled pass, plane by plane and row by row, so no registered
+or float64 copy of the volume is ever made (:mod:`pipeline.volumes.summary_kernels`).
 
-Numerical note: the sums are float64 and the data can be offset by a per-voxel constant
-(``offset``, e.g. the reference volume) before accumulation; correlations do not change under
-such an offset, and it keeps ``sum x^2 - (sum x)^2 / n`` well conditioned over thousands of
-volumes.
+Numerical note: the session's sums are float64 and the data can be offset by a per-voxel
+constant (``offset``, e.g. the reference volume) before accumulation; correlations do not
+change under such an offset, and it keeps ``sum x^2 - (sum x)^2 / n`` well conditioned over
+thousands of volumes. A task accumulates its block of volumes in float32
+(``SummaryAccumulator.empty(..., dtype="float32")``, at most :data:`BLOCK32_MAX_VOLUMES`
+volumes) and the blocks are added into float64 sums in volume order. Each product is formed
+in float64 and rounded once when added, so by the recursive-summation bound (Higham,
+*Accuracy and Stability of Numerical Algorithms*, 2nd ed., section 4.2) a block sum of m
+terms is off by at most ``(m - 1) u sum |terms| + m u |sum|`` with ``u = 2**-24``: a relative
+error below ``2 * 64 * 6e-8 = 7.6e-6`` of ``sum |terms|`` for the non-negative ``sum x^2`` and
+``sum n^2``, and, because the offset makes the block's terms small deviations, well below the
+float32 rounding of the mean image for ``sum x``. The float64 session sums add the blocks
+with float64 error only. The block partition depends on the session length and
+``motion.block_volumes``, never on the worker count, so results are bit-identical on any
+number of workers. The float32 blocks halve the memory traffic of the sums (the largest cost
+of :meth:`SummaryAccumulator.update_shifted`), a task's memory and the spilled files.
 """
 
 from __future__ import annotations
@@ -23,12 +35,15 @@ from __future__ import annotations
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 
-import numba
 import numpy as np
 
 from pipeline.errors import ConfigError
+from pipeline.volumes.summary_kernels import accumulate
 
-__all__ = ["SummaryAccumulator", "SpilledSums", "neighbour_mean"]
+__all__ = ["SummaryAccumulator", "SpilledSums", "neighbour_mean", "BLOCK32_MAX_VOLUMES"]
+
+#: Most volumes a float32 block accumulator takes (module note: relative error <= 64 u).
+BLOCK32_MAX_VOLUMES = 64
 
 _NEIGHBOURHOODS = (26, 6, 8)
 _MODE = {26: 0, 6: 1, 8: 2}
@@ -107,182 +122,6 @@ def _box3(a: np.ndarray, axis: int) -> np.ndarray:
     return out
 
 
-@numba.njit(cache=True, nogil=True)
-def _taps(n, k):  # pragma: no cover - compiled
-    lo = np.empty(n, np.int64)
-    hi = np.empty(n, np.int64)
-    for i in range(n):
-        lo[i] = min(max(i + k, 0), n - 1)
-        hi[i] = min(max(i + k + 1, 0), n - 1)
-    return lo, hi
-
-
-@numba.njit(cache=True, nogil=True)
-def _registered_plane(vol, z, zlo, zhi, fz, ylo, yhi, fy, xlo, xhi, fx, exact, offset,
-                      a, b, out):  # pragma: no cover - compiled
-    """Plane z of ``shift_volume(vol, shift) - offset`` into ``out`` (float64).
-
-    Lerps along z, then y, then x in float32 with the operation order of
-    ``motion._separable_linear_shift`` (bit-identical to it); ``exact`` reads the values as
-    float64 without any arithmetic (zero shift on a float input)."""
-    ny, nx = out.shape
-    if exact:
-        for y in range(ny):
-            for x in range(nx):
-                out[y, x] = np.float64(vol[z, y, x]) - np.float64(offset[z, y, x])
-        return
-    one = np.float32(1.0)
-    p0 = zlo[z]
-    p1 = zhi[z]
-    for y in range(ny):
-        for x in range(nx):
-            v0 = np.float32(vol[p0, y, x])
-            if fz != 0:
-                a[y, x] = v0 * (one - fz) + np.float32(vol[p1, y, x]) * fz
-            else:
-                a[y, x] = v0
-    for y in range(ny):
-        r0 = ylo[y]
-        r1 = yhi[y]
-        for x in range(nx):
-            if fy != 0:
-                b[y, x] = a[r0, x] * (one - fy) + a[r1, x] * fy
-            else:
-                b[y, x] = a[r0, x]
-    for y in range(ny):
-        for x in range(nx):
-            if fx != 0:
-                v = b[y, xlo[x]] * (one - fx) + b[y, xhi[x]] * fx
-            else:
-                v = b[y, xlo[x]]
-            out[y, x] = np.float64(v) - np.float64(offset[z, y, x])
-
-
-@numba.njit(cache=True, nogil=True)
-def _neighbour_plane(cur, up, dn, has_up, has_dn, mode, box, boy):  # pragma: no cover
-    """Neighbour mean of plane ``cur`` (planes ``up`` = z + 1, ``dn`` = z - 1) into ``box``,
-    with the box sums in the order of :func:`neighbour_mean` (bit-identical to it)."""
-    ny, nx = cur.shape
-    if mode == 1:  # 6 face neighbours
-        for y in range(ny):
-            for x in range(nx):
-                t = 0.0
-                c = 0.0
-                if has_up:
-                    t = t + up[y, x]
-                    c += 1.0
-                if has_dn:
-                    t = t + dn[y, x]
-                    c += 1.0
-                if y + 1 < ny:
-                    t = t + cur[y + 1, x]
-                    c += 1.0
-                if y > 0:
-                    t = t + cur[y - 1, x]
-                    c += 1.0
-                if x + 1 < nx:
-                    t = t + cur[y, x + 1]
-                    c += 1.0
-                if x > 0:
-                    t = t + cur[y, x - 1]
-                    c += 1.0
-                box[y, x] = t / c if c > 0 else 0.0
-    else:
-        cz = 1.0
-        if mode == 0:  # 26: box along z first
-            cz = 1.0 + has_up + has_dn
-            for y in range(ny):
-                for x in range(nx):
-                    t = cur[y, x]
-                    if has_up:
-                        t = t + up[y, x]
-                    if has_dn:
-                        t = t + dn[y, x]
-                    boy[y, x] = t
-        else:
-            boy[:, :] = cur
-        for y in range(ny):  # box along y
-            for x in range(nx):
-                t = boy[y, x]
-                if y + 1 < ny:
-                    t = t + boy[y + 1, x]
-                if y > 0:
-                    t = t + boy[y - 1, x]
-                box[y, x] = t
-        for y in range(ny):  # box along x, minus the centre, over the count
-            cy = 1.0 + (y > 0) + (y + 1 < ny) if ny > 1 else 1.0
-            for x in range(nx):
-                t = box[y, x]
-                if x + 1 < nx:
-                    t = t + box[y, x + 1]
-                if x > 0:
-                    t = t + box[y, x - 1]
-                cx = 1.0 + (x > 0) + (x + 1 < nx) if nx > 1 else 1.0
-                c = cz * cy * cx - 1.0
-                boy[y, x] = (t - cur[y, x]) / max(c, 1.0) if c > 0 else 0.0
-        box[:, :] = boy
-
-
-@numba.njit(cache=True, nogil=True)
-def _accumulate(vols, shift_i, shift_f, offset, exact, mode, s_x, s_xx, s_xn,
-                s_nn):  # pragma: no cover - compiled
-    """Add volumes ``vols[b]``, each registered by its shift and offset, to the running sums.
-
-    Plane by plane: for each volume the registered plane ahead is built into its ring of three
-    float64 planes, the neighbour mean of the current plane is formed from the ring, and the
-    sums of that plane are updated (each voxel receives the volumes in order). Hand-written
-    because it replaces a float32 registered copy, a float64 copy, three box-sum copies and
-    five full-volume read-modify-write passes per volume: 14 ms instead of 117 ms of CPU per
-    30 x 256 x 256 volume (measured on one core: ~3.4 ms building the registered planes,
-    ~3.1 ms neighbour means, ~7.2 ms updating the four float64 sums, which is memory traffic;
-    taking 8 volumes plane by plane in turn did not help, the working set exceeds the cache).
-    """
-    nb, nz, ny, nx = vols.shape
-    taps = np.empty((nb, 6, max(nz, ny, nx)), np.int64)
-    for i in range(nb):
-        lo, hi = _taps(nz, shift_i[i, 0])
-        taps[i, 0, :nz] = lo
-        taps[i, 1, :nz] = hi
-        lo, hi = _taps(ny, shift_i[i, 1])
-        taps[i, 2, :ny] = lo
-        taps[i, 3, :ny] = hi
-        lo, hi = _taps(nx, shift_i[i, 2])
-        taps[i, 4, :nx] = lo
-        taps[i, 5, :nx] = hi
-    ring = np.empty((nb, 3, ny, nx), np.float64)
-    a = np.empty((ny, nx), np.float32)
-    b = np.empty((ny, nx), np.float32)
-    box = np.empty((ny, nx), np.float64)
-    boy = np.empty((ny, nx), np.float64)
-    for i in range(nb):
-        t = taps[i]
-        _registered_plane(vols[i], 0, t[0], t[1], shift_f[i, 0], t[2], t[3], shift_f[i, 1],
-                          t[4], t[5], shift_f[i, 2], exact, offset, a, b, ring[i, 0])
-    for z in range(nz):
-        for i in range(nb):
-            r = ring[i]
-            if z + 1 < nz:
-                t = taps[i]
-                _registered_plane(vols[i], z + 1, t[0], t[1], shift_f[i, 0], t[2], t[3],
-                                  shift_f[i, 1], t[4], t[5], shift_f[i, 2], exact, offset, a,
-                                  b, r[(z + 1) % 3])
-            cur = r[z % 3]
-            _neighbour_plane(cur, r[(z + 1) % 3], r[(z + 2) % 3], z + 1 < nz, z > 0, mode,
-                             box, boy)
-            sx = s_x[z]
-            sxx = s_xx[z]
-            sxn = s_xn[z]
-            snn = s_nn[z]
-            for y in range(ny):
-                for x in range(nx):
-                    v = cur[y, x]
-                    m = box[y, x]
-                    sx[y, x] += v
-                    sxx[y, x] += v * v
-                    sxn[y, x] += v * m
-                    snn[y, x] += m * m
-
-
 @dataclass
 class SummaryAccumulator:
     """Running sums for the mean and local-correlation images of registered volumes.
@@ -315,8 +154,17 @@ class SummaryAccumulator:
 
     @classmethod
     def empty(cls, shape: tuple[int, ...], *, neighbourhood: int = 26,
-              offset: np.ndarray | None = None) -> SummaryAccumulator:
-        """An accumulator of zero volumes for volumes of ``shape`` (z, y, x)."""
+              offset: np.ndarray | None = None,
+              dtype: type[np.floating] | str = np.float64) -> SummaryAccumulator:
+        """An accumulator of zero volumes for volumes of ``shape`` (z, y, x).
+
+        ``dtype="float32"`` makes a block accumulator: half the memory and memory traffic of
+        the float64 sums, for at most :data:`BLOCK32_MAX_VOLUMES` volumes, to be merged into
+        a float64 accumulator (see the module's numerical note for the error bound).
+        """
+        dt = np.dtype(dtype)
+        if dt not in (np.float32, np.float64):
+            raise ConfigError(f"dtype = {dtype!r}: expected float32 or float64")
         if neighbourhood not in _NEIGHBOURHOODS:
             raise ConfigError(f"neighbourhood = {neighbourhood!r}: expected one of "
                               f"{_NEIGHBOURHOODS}")
@@ -324,7 +172,7 @@ class SummaryAccumulator:
         if offset is not None and np.shape(offset) != shape:
             raise ConfigError(f"offset has shape {np.shape(offset)}; expected {shape}")
         def z() -> np.ndarray:
-            return np.zeros(shape, dtype=np.float64)
+            return np.zeros(shape, dtype=dt)
 
         off = None
         if offset is not None:
@@ -344,6 +192,7 @@ class SummaryAccumulator:
         if not (np.issubdtype(v.dtype, np.integer) or np.issubdtype(v.dtype, np.floating)):
             v = v.astype(np.float64)
         nb = v.shape[0]
+        self._check_room(nb)
         if shifts_vox is None:
             k = np.zeros((nb, 3), np.int64)
             f = np.zeros((nb, 3), np.float32)
@@ -358,7 +207,7 @@ class SummaryAccumulator:
         off = self.offset
         if off is None:
             off = np.broadcast_to(np.zeros((1, 1, 1), np.float32), self.shape)
-        _accumulate(np.ascontiguousarray(v), k, f, off, shifts_vox is None,
+        accumulate(np.ascontiguousarray(v), k, f, off, shifts_vox is None,
                     _MODE[self.neighbourhood], self.sum_x, self.sum_xx, self.sum_xn,
                     self.sum_nn)
         self.n += nb
@@ -405,6 +254,12 @@ class SummaryAccumulator:
         return SpilledSums(path=str(path), n=self.n, shape=tuple(self.shape),
                            neighbourhood=self.neighbourhood)
 
+    def _check_room(self, extra: int) -> None:
+        if self.sum_x.dtype == np.float32 and self.n + extra > BLOCK32_MAX_VOLUMES:
+            raise ConfigError(f"a float32 block accumulator holds at most "
+                              f"{BLOCK32_MAX_VOLUMES} volumes; got {self.n + extra} (merge "
+                              f"blocks into a float64 accumulator)")
+
     def merge_spilled(self, spilled: SpilledSums) -> SummaryAccumulator:
         """:meth:`merge` the sums written by :meth:`spill` (same offset assumed) and delete
         the files; returns self."""
@@ -412,6 +267,7 @@ class SummaryAccumulator:
             raise ConfigError(f"cannot merge accumulators of shape {spilled.shape} / "
                               f"neighbourhood {spilled.neighbourhood} into shape {self.shape} "
                               f"/ neighbourhood {self.neighbourhood}")
+        self._check_room(spilled.n)
         import os
 
         for name in self._SUMS:
@@ -440,6 +296,7 @@ class SummaryAccumulator:
             and np.array_equal(self.offset, other.offset))
         if not same_offset:
             raise ConfigError("cannot merge accumulators built with different offsets")
+        self._check_room(other.n)
         for name in ("sum_x", "sum_xx", "sum_xn", "sum_nn"):
             getattr(self, name).__iadd__(getattr(other, name))
         self.n += other.n
@@ -468,11 +325,13 @@ class SummaryAccumulator:
         if self.n == 0:
             raise ConfigError("no volume accumulated: the summary images are undefined")
         n = float(self.n)
-        mx = self.sum_x / n
-        mn = neighbour_mean(self.sum_x, neighbourhood=self.neighbourhood) / n
-        cov = self.sum_xn / n - mx * mn
-        vx = np.maximum(self.sum_xx / n - mx * mx, 0.0)
-        vn = np.maximum(self.sum_nn / n - mn * mn, 0.0)
+        s_x, s_xx, s_xn, s_nn = (np.asarray(getattr(self, k), dtype=np.float64)
+                                 for k in self._SUMS)
+        mx = s_x / n
+        mn = neighbour_mean(s_x, neighbourhood=self.neighbourhood) / n
+        cov = s_xn / n - mx * mn
+        vx = np.maximum(s_xx / n - mx * mx, 0.0)
+        vn = np.maximum(s_nn / n - mn * mn, 0.0)
         den = np.sqrt(vx * vn)
         tiny = 1e-12 * max(float(np.max(vx, initial=0.0)), 1e-300)
         with np.errstate(invalid="ignore", divide="ignore"):

@@ -10,7 +10,9 @@ balls at some of the blob centres. Measured in one run:
     on a subset of volumes, with the shift errors of both against the truth;
 (c) peak RSS of our path at N and 2N volumes, each in its own subprocess (goal flat within
     15 %, under 2 GB);
-(d) 2 workers on a distributed LocalCluster vs 1 (goal >= 1.7x, identical outputs).
+(d) 2 workers on a distributed LocalCluster vs 1 (goal >= 1.7x, identical outputs), with the
+    machine's capacity for two workers at that moment (two independent 1-worker runs at
+    once vs one alone) as the bound it is read against.
 
 (a) times the three passes fused in one task per block (register, accumulate, sample), the
 least the imaging path can do. The pipeline runs them as its stages must, since cells are
@@ -107,7 +109,7 @@ def _path_task(group: tuple[int, int], vpath: str, ref_path: str, weights_path: 
     reference = np.asarray(zarr.open_array(ref_path, mode="r")[...])
     prep = prepare_reference(reference, **options)
     w = _cached_weights(weights_path)
-    acc = SummaryAccumulator.empty(reference.shape, offset=reference)
+    acc = SummaryAccumulator.empty(reference.shape, offset=reference, dtype="float32")
     n = group[1] - group[0]
     shifts = np.zeros((n, 3))
     cell = np.empty((w.cell.shape[0], n), np.float32)
@@ -335,6 +337,38 @@ def _peak_rss_kib() -> float:
     return float(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)
 
 
+def _timed_child(vpath: str, labels_path: str, work: str) -> None:
+    """Subprocess body: one warm 1-worker run of our path on an existing session; prints s."""
+    labels = np.load(labels_path)
+    Path(work).mkdir(parents=True, exist_ok=True)
+    print(json.dumps({"seconds": our_path(vpath, labels, Path(work))[0]}))
+
+
+def _capacity(vpath: str, labels: np.ndarray, work: Path) -> float:
+    """What the shared machine offers two workers now: two independent 1-worker runs of our
+    path started together, each in its own process, against one run alone (throughput ratio:
+    2.0 on two free cores). A 2-worker speed-up cannot exceed it; measured next to the
+    cluster run because the other users' load changes from minute to minute."""
+    labels_path = str(work / "capacity_labels.npy")
+    np.save(labels_path, labels)
+
+    def start(k: int) -> subprocess.Popen:
+        code = (f"import sys; sys.path.insert(0, {str(ROOT)!r}); sys.path.insert(0, "
+                f"{str(ROOT / 'tests' / 'benchmarks')!r}); import bench_imaging as b; "
+                f"b._timed_child({vpath!r}, {labels_path!r}, {str(work / f'cap{k}')!r})")
+        return subprocess.Popen([sys.executable, "-c", code], stdout=subprocess.PIPE,
+                                stderr=subprocess.DEVNULL, text=True, cwd=ROOT)
+
+    def seconds(proc: subprocess.Popen) -> float:
+        out, _ = proc.communicate()
+        return float(json.loads(out.strip().splitlines()[-1])["seconds"])
+
+    alone = seconds(start(0))
+    pair = [start(1), start(2)]
+    both = max(seconds(p) for p in pair)
+    return 2.0 * alone / both
+
+
 def _rss(n_vol: int, shape: tuple[int, int, int]) -> float:
     code = (f"import sys; sys.path.insert(0, {str(ROOT)!r}); sys.path.insert(0, "
             f"{str(ROOT / 'tests' / 'benchmarks')!r}); import bench_imaging as b; "
@@ -352,7 +386,11 @@ def run(quick: bool) -> list[dict]:
         vpath, truth, labels = make_session(work, n_vol, shape)
         truth = truth - truth[0]  # the reference is volume 0
         t_read = min(_read_pass(vpath) for _ in range(2))
+        # best of 2 (the machine is shared; the CPU time is the smaller of the two runs)
         t_ours, ours = our_path(vpath, labels, work)
+        cpu_first = _CPU["ours"]
+        t_again, _ = our_path(vpath, labels, work)
+        t_ours, _CPU["ours"] = min(t_ours, t_again), min(cpu_first, _CPU["ours"])
         err = float(np.abs(ours["shifts"] - truth).max())
         rows.append({
             "name": f"imaging path / one read pass ({n_vol} x {'x'.join(map(str, shape))})",
@@ -365,6 +403,9 @@ def run(quick: bool) -> list[dict]:
         })
         stage_passes(vpath, labels, work, n_vol=2)  # warm up (compiled kernels), untimed
         t_stages = stage_passes(vpath, labels, work)
+        cpu_first = _CPU["stages"]
+        t_stages = min(t_stages, stage_passes(vpath, labels, work))  # best of 2
+        _CPU["stages"] = min(cpu_first, _CPU["stages"])
         rows.append({
             "name": "imaging stages as the pipeline runs them / one read pass",
             "figure": t_stages, "baseline": t_read, "ratio": t_stages / t_read, "goal": 3.0,
@@ -391,11 +432,17 @@ def run(quick: bool) -> list[dict]:
         t1, out1 = t_ours, ours
         t2, out2 = our_path(vpath, labels, work, scheduler="local-cluster", workers=2)
         same = _digest(out1) == _digest(out2)
+        t_again, out2 = our_path(vpath, labels, work, scheduler="local-cluster", workers=2)
+        t2, same = min(t2, t_again), same and _digest(out1) == _digest(out2)  # best of 2
+        capacity = _capacity(vpath, labels, work)
         rows.append({
             "name": "imaging path: 2-worker LocalCluster speed-up over 1 worker",
             "figure": t2, "baseline": t1, "ratio": t1 / t2, "goal": 1.7,
             "passed": bool(t1 / t2 >= 1.7 and same), "unit": "s",
-            "note": f"outputs identical: {same}; machine has 2 cores shared with others",
+            "note": f"outputs identical: {same}; machine has 2 cores shared with others; "
+                    f"machine capacity for two workers measured right after: "
+                    f"{capacity:.2f} (two independent 1-worker runs at once vs one alone, "
+                    f"2.0 = two free cores; the speed-up cannot exceed it)",
         })
     rss_1 = _rss(n_vol, shape)
     rss_2 = _rss(2 * n_vol, shape)
