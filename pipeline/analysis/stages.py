@@ -310,9 +310,11 @@ def _plane_design(reg, t_fine, z, plane_t, trial_z, bearing_z, split_s, options)
     motor = sample_columns(t_fine, reg["motor"], t)
     if options["baseline"] is not None and motor.shape[1]:
         # the dF/F baseline saw every sample of the plane, not only the analysis windows
-        every = sample_columns(t_fine, reg["motor"], plane_t)
-        motor = np.concatenate([motor, baseline_columns(every, options["leads_s"],
-                                                        **options["baseline"])[idx]], axis=1)
+        fin = np.isfinite(plane_t)
+        extra = np.full((plane_t.size, 5), np.nan)
+        extra[fin] = baseline_columns(sample_columns(t_fine, reg["motor"], plane_t[fin]),
+                                      options["leads_s"], **options["baseline"])
+        motor = np.concatenate([motor, extra[idx]], axis=1)
     return {"samples": idx, "epoch_of": epoch_of[idx], "trial": trial_z[idx],
             "epochs": reg["epochs"], "bearing": bearing_z[idx],
             "terms": sample_columns(t_fine, reg["terms"], t),
