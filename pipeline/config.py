@@ -315,6 +315,10 @@ class TuningSettings:
     nuisance_leads_s: tuple[float, ...] = _f((-1.0, -0.5, 0.0, 0.5, 1.0, 1.5, 2.0),
                                              doc="leads of the motor nuisance impulses before "
                                              "each bout onset (negative = after it)", unit="s")
+    nuisance_baseline: bool = _f(True, doc="with dF/F activity, also add the running-"
+                                 "percentile baseline of the lead-0 motor terms (window and "
+                                 "percentile of the traces section) to the nuisance: the dF/F "
+                                 "baseline of a cell active at every bout follows the bout rate")
     attribution: Literal["consistent", "best", "unique"] = _f(
         "consistent", doc="'best': a cell whose bearing terms (all targets together) are "
         "significant is tuned to the target that alone explains most; 'consistent': the same, "

@@ -4,9 +4,11 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+import scipy.ndimage
 import scipy.signal
 
 from pipeline.analysis.regressors import (
+    baseline_columns,
     fine_epoch_gates,
     indicator_filter,
     motor_columns,
@@ -67,6 +69,19 @@ def test_motor_columns_place_weighted_impulses_at_each_lead():
     # lead 1.5 s: the same impulses 1.5 s earlier
     assert cols[35, 1, 0] == pytest.approx(0.5) and cols[55, 1, 2] == pytest.approx(0.2)
     assert np.count_nonzero(out) == 12
+
+
+def test_baseline_columns_are_the_running_percentile_of_the_lead_nearest_0(rng):
+    # reference: scipy.ndimage.percentile_filter, the definition the dF/F baseline follows
+    motor = rng.random((300, 15))
+    got = baseline_columns(motor, (-0.5, 0.25, 1.5), percentile=20.0, window=41)
+    want = scipy.ndimage.percentile_filter(motor[:, 5:10], 20.0, size=(41, 1), mode="reflect")
+    np.testing.assert_allclose(got, want)
+    # a positive multiple of a term has that multiple of its baseline (what makes it a column)
+    np.testing.assert_allclose(baseline_columns(3.0 * motor, (-0.5, 0.25, 1.5),
+                                                percentile=20.0, window=41), 3.0 * want)
+    with pytest.raises(InputError, match="expected 5 columns per lead"):
+        baseline_columns(motor[:, :14], (0.0, 1.5, 2.0), percentile=20.0, window=41)
 
 
 def test_uniform_grid_and_sampling():

@@ -12,6 +12,7 @@ import pytest
 from pipeline.align import ClockModel
 from pipeline.analysis.decode import decode_continuous, lag_samples
 from pipeline.analysis.regressors import (
+    baseline_columns,
     sample_columns,
     tuning_regressors,
     uniform_grid,
@@ -25,6 +26,7 @@ from pipeline.config import ComputeSettings, parse_config
 from pipeline.errors import StoreError
 from pipeline.session import decode_table
 from pipeline.store import Store
+from pipeline.volumes.traces import window_samples
 
 RATE_HZ, N_TRIALS, TRIAL_LEN, N_PLANES = 2.0, 12, 60, 2
 
@@ -149,10 +151,16 @@ def test_tuning_stage_matches_kernel(rng, tmp_path):
     idx = np.flatnonzero(ep != "")
     terms = sample_columns(t_rig, reg["terms"], plane_t[idx])
     e = reg["epochs"].index("pre")
+    # the dF/F baseline of the motor terms sees every sample of the plane
+    motor_all = sample_columns(t_rig, reg["motor"], plane_t)
+    baseline = baseline_columns(motor_all, ts.nuisance_leads_s,
+                                percentile=settings.traces.baseline_percentile,
+                                window=window_samples(settings.traces.baseline_window_s,
+                                                      RATE_HZ))
     nuis = np.concatenate([terms[:, f].reshape(idx.size, -1) for f in range(terms.shape[1])
                            if f != e] + [sample_columns(t_rig, reg["levels"], plane_t[idx])
                                          .reshape(idx.size, -1),
-                                         sample_columns(t_rig, reg["motor"], plane_t[idx])],
+                                         motor_all[idx], baseline[idx]],
                           axis=1)
     rows = np.flatnonzero(np.arange(40) % N_PLANES == 0)
     eager = unique_variance_test(act[rows].T[idx], columns=terms[:, e], nuisance=nuis,

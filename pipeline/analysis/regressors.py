@@ -14,6 +14,11 @@ times. Three kinds of columns:
   (premotor activity grows with the turn), and for all bouts by vigor, each shifted to a set of
   leads and lags (an FIR basis), so activity that precedes or follows movements is absorbed by
   nuisance terms instead of passing as bearing tuning (turns depend on bearing);
+* baseline terms (optional, :func:`baseline_columns`): the running-percentile baseline of the
+  motor terms, sampled like the activity. A dF/F trace is divided by, and has subtracted, a
+  baseline estimated on the cell's *own* fluorescence; a cell driven at every bout never
+  returns to rest while bouts are frequent, so its baseline follows the bout rate over the
+  baseline window (tens of seconds), a slow term no FIR basis of a few seconds can span;
 * nothing else: intercepts are added by the test.
 
 All functions are pure NumPy/SciPy functions of arrays.
@@ -25,6 +30,7 @@ import numpy as np
 from scipy.signal import lfilter
 
 from pipeline.errors import InputError
+from pipeline.volumes.traces import running_percentile
 
 __all__ = [
     "indicator_filter",
@@ -35,6 +41,7 @@ __all__ = [
     "uniform_grid",
     "window_epochs",
     "tuning_regressors",
+    "baseline_columns",
 ]
 
 EPOCH_NAMES = ("pre", "between", "post")
@@ -276,3 +283,47 @@ def tuning_regressors(t_s, bearing_rad, trial, split_s, *, rise_s, decay_s, n_ha
         motor = indicator_filter(motor_columns(t_s, *bouts, leads_s=leads_s), **kw)
     return {"terms": indicator_filter(terms, **kw), "levels": indicator_filter(levels, **kw),
             "motor": motor, "epochs": list(gates)}
+
+
+def baseline_columns(motor, leads_s, *, percentile, window):
+    """Running-percentile baselines of the motor terms at the lead nearest 0.
+
+    A dF/F trace ``(F - F0) / F0`` with ``F0`` a running percentile of the cell's own ``F``
+    is, for a cell whose activity is ``a m(t)`` (``m`` one motor term), to first order
+    ``a m(t) - a P[m](t)``, ``P`` the running percentile: since ``P[a m] = a P[m]`` for
+    ``a > 0``, ``P[m]`` is the column that spans what the baseline took away. The baselines of
+    terms at neighbouring leads differ by a shift of a fraction of a second over a window of
+    tens of seconds, so only the lead nearest 0 is kept (one column per weight: left
+    ``|turn|``, left ``turn^2``, right ``|turn|``, right ``turn^2``, vigor).
+
+    Parameters
+    ----------
+    motor : ndarray of shape (n_samples, 5 * len(leads_s))
+        Motor terms (:func:`motor_columns`, filtered and sampled) at *every* sample of a
+        plane, in time order: the window must see what the dF/F baseline saw.
+    leads_s : sequence of float
+        The leads of ``motor``'s columns.
+    percentile : float
+        Baseline percentile (0-100), as in the dF/F.
+    window : int
+        Window in samples, as in the dF/F.
+
+    Returns
+    -------
+    ndarray of shape (n_samples, 5)
+        Columns without any impulse stay 0.
+
+    References
+    ----------
+    Jia H, Rochefort NL, Chen X, Konnerth A (2011). In vivo two-photon imaging of
+    sensory-evoked dendritic calcium signals in cortical neurons. Nat Protoc 6:28-35
+    (running-percentile dF/F baseline). doi:10.1038/nprot.2010.169
+    """
+    motor = np.asarray(motor, dtype=np.float64)
+    leads = np.asarray(leads_s, dtype=np.float64)
+    if leads.size == 0 or motor.shape[1] != 5 * leads.size:
+        raise InputError(f"motor terms: expected 5 columns per lead ({leads.size} leads), got "
+                         f"{motor.shape[1]} columns")
+    j = int(np.argmin(np.abs(leads)))
+    cols = motor[:, 5 * j: 5 * (j + 1)]
+    return running_percentile(cols.T, percentile, int(window)).T

@@ -30,6 +30,7 @@ from pipeline.analysis.bouts import decode_bouts
 from pipeline.analysis.cv import gap_samples
 from pipeline.analysis.decode import decode_continuous, lag_samples
 from pipeline.analysis.regressors import (
+    baseline_columns,
     sample_columns,
     tuning_regressors,
     uniform_grid,
@@ -47,6 +48,7 @@ from pipeline.analysis.tuning import (
 )
 from pipeline.errors import InputError, StoreError
 from pipeline.stages import stage
+from pipeline.volumes.traces import window_samples
 
 __all__ = ["ALIGN", "run_decode", "run_tuning"]
 
@@ -305,11 +307,19 @@ def _plane_design(reg, t_fine, z, plane_t, trial_z, bearing_z, split_s, options)
     if idx.size < 10 or np.unique(trial_z[idx]).size < 3:
         return None
     t = plane_t[idx]
+    motor = sample_columns(t_fine, reg["motor"], t)
+    if options["baseline"] is not None and motor.shape[1]:
+        # the dF/F baseline saw every sample of the plane, not only the analysis windows
+        fin = np.isfinite(plane_t)
+        extra = np.full((plane_t.size, 5), np.nan)
+        extra[fin] = baseline_columns(sample_columns(t_fine, reg["motor"], plane_t[fin]),
+                                      options["leads_s"], **options["baseline"])
+        motor = np.concatenate([motor, extra[idx]], axis=1)
     return {"samples": idx, "epoch_of": epoch_of[idx], "trial": trial_z[idx],
             "epochs": reg["epochs"], "bearing": bearing_z[idx],
             "terms": sample_columns(t_fine, reg["terms"], t),
             "levels": sample_columns(t_fine, reg["levels"], t),
-            "motor": sample_columns(t_fine, reg["motor"], t),
+            "motor": motor,
             "perms": _perms(trial_z[idx], options, seed=options["seed"] + int(z))}
 
 
@@ -321,7 +331,7 @@ def _perms(trial, options, *, seed):
 
 
 @stage("tuning", requires=("traces", "cells", "align", "behaviour"),
-       sections=("imaging", "tuning"), enabled=lambda s: s.tuning.enabled)
+       sections=("imaging", "traces", "tuning"), enabled=lambda s: s.tuning.enabled)
 def run_tuning(settings, store, compute):
     """Per cell, target and epoch: tuning curve, preference, unique variance, p, q, flags.
 
@@ -372,6 +382,12 @@ def run_tuning(settings, store, compute):
                "attribution": ts.attribution,
                "guard_s": ts.split_guard_s,
                "min_epoch_trials": ts.min_epoch_trials,
+               "leads_s": ts.nuisance_leads_s,
+               # the dF/F's own baseline (traces section) applied to the motor terms
+               "baseline": ({"percentile": settings.traces.baseline_percentile,
+                             "window": window_samples(settings.traces.baseline_window_s,
+                                                      im.volume_rate_hz)}
+                            if ts.nuisance_baseline and ts.feature == "dff" else None),
                "n_bins": ts.n_bins,
                "min_count": max(1, round(ts.min_occupancy_s * im.volume_rate_hz))}
     tasks = []
