@@ -17,6 +17,7 @@ STAGE_MODULES = (
     "pipeline.behaviour.stages",
     "pipeline.align.stages",
     "pipeline.analysis.stages",
+    "pipeline.analysis.tuning_stage",
     "pipeline.report.stage",
 )
 

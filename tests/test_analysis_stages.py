@@ -18,9 +18,10 @@ from pipeline.analysis.regressors import (
     uniform_grid,
     window_epochs,
 )
-from pipeline.analysis.stages import ALIGN, _epoch_splits, run_decode, run_tuning
+from pipeline.analysis.stages import ALIGN, run_decode
 from pipeline.analysis.stats import trial_shuffle_indices
 from pipeline.analysis.tuning import unique_variance_test
+from pipeline.analysis.tuning_stage import _epoch_splits, run_tuning
 from pipeline.compute import Compute
 from pipeline.config import ComputeSettings, parse_config
 from pipeline.errors import StoreError

@@ -1,7 +1,7 @@
 """Decoding of turns from population activity, bearing tuning, and their statistics.
 
-Kernels are pure NumPy functions of arrays; ``pipeline.analysis.stages`` maps them over the
-session store.
+Kernels are pure NumPy functions of arrays; ``pipeline.analysis.stages`` (decode) and
+``pipeline.analysis.tuning_stage`` map them over the session store.
 """
 
 from pipeline.analysis.bouts import BoutDecode, bout_features, decode_bouts, sample_at
