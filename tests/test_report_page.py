@@ -124,3 +124,14 @@ def test_report_stage_writes_through_the_store(tmp_path, rng):
     text = (root / "report" / "index.html").read_text()
     assert "forkmap report: demo &lt;1&gt;" in text
     assert re.search(r"dF/F of the 3 cells \(of 5\)", text)
+
+
+def test_caption_warns_when_the_null_cannot_reach_p_005():
+    from pipeline.report.stage import _too_few_nulls
+
+    # permutation p >= 1 / (n + 1) (Phipson & Smyth 2010): 5 refits cannot give p < 0.05,
+    # 20 can (1/21 = 0.048)
+    assert "decode.n_null_bouts" in _too_few_nulls(5, "bout_auc")
+    assert "1/6 = 0.17" in _too_few_nulls(5, "bout_auc")
+    assert "decode.n_null " in _too_few_nulls(19, "turn_r2") + " "
+    assert _too_few_nulls(20, "bout_auc") == "" and _too_few_nulls(0, "turn_r2") == ""

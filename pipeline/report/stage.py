@@ -258,6 +258,16 @@ _CURVES = (("turn_r2", "continuous turn command", "cross-validated R²"),
            ("bout_angle_r2", "bout turn angle", "cross-validated R²"))
 
 
+def _too_few_nulls(n_null: int, key: str) -> str:
+    """A caption warning when the null is too small for any lag to reach p < 0.05."""
+    if not n_null or 1.0 / (n_null + 1) < 0.05:
+        return ""
+    option = "decode.n_null" if key == "turn_r2" else "decode.n_null_bouts"
+    return (f" With {n_null} refits the smallest possible p is 1/{n_null + 1} = "
+            f"{1.0 / (n_null + 1):.2f} (Phipson & Smyth 2010), so no lag can be called "
+            f"decodable: raise {option} to at least 20.")
+
+
 def _decoding(ctx: _Ctx) -> str:
     s = ctx.session
     doc = s.decoding_summary
@@ -291,7 +301,7 @@ def _decoding(ctx: _Ctx) -> str:
                               "Dashed: earliest decodable lag, the start of the unbroken run of "
                               "lags up to the best one that beat the null's 95th percentile "
                               "(p < 0.05) with their 95% interval across folds above chance."
-                              ))
+                              + _too_few_nulls(c.get("n_null", 0), key)))
     conf = doc.get("bout_confusion")
     if isinstance(conf, dict) and conf.get("confusion"):
         out.append(ctx.figure("confusion", F.confusion_figure(
