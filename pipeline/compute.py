@@ -62,8 +62,6 @@ def slurm_cluster(settings: ComputeSettings) -> Any:
     return SLURMCluster(**kwargs)
 
 
-_BLAS: Any = None
-
 # dask.distributed's nannies start workers with MALLOC_TRIM_THRESHOLD_=65536 so that freed
 # memory goes back to the OS at once. Setting it switches off glibc's dynamic mmap threshold
 # (mallopt(3)), so every large temporary (a volume, an FFT buffer) is a fresh mmap whose pages
@@ -72,6 +70,8 @@ _BLAS: Any = None
 # process, and 0.79-0.84 s on a worker started without the variable (measured). Our tasks
 # reuse buffers of the same sizes volume after volume, so local clusters start without it.
 _TRIM_KEY = "distributed.nanny.pre-spawn-environ.MALLOC_TRIM_THRESHOLD_"
+
+_BLAS: Any = None                 # the process's ThreadpoolController, made on first use
 
 
 def _one_blas_thread() -> Any:

@@ -190,8 +190,8 @@ class MotionSettings:
     z_drift_fraction: float = _f(0.5, doc="flag |dz| above this fraction of a plane", gt=0.0)
     quality_mad: float = _f(5.0, doc="flag quality below median - k * MAD", gt=0.0)
     block_volumes: int = _f(32, doc="volumes per registration task (each task reads the "
-                            "reference and returns a summary accumulator of 4 float64 "
-                            "volumes, so small tasks pay that overhead often)", ge=1)
+                            "reference and returns a summary accumulator of 4 float32 "
+                            "volume-sized sums, so small tasks pay that overhead often)", ge=1)
     tukey_alpha: float = _f(0.25, doc="taper fraction of the analysis window", ge=0.0, le=1.0)
     neighbourhood: Literal[26, 6, 8] = _f(
         26, doc="local-correlation neighbours: 26 (cube), 6 (faces), 8 (same plane)")

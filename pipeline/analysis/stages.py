@@ -1,7 +1,7 @@
 """The ``decode`` stage, and the store helpers it shares with the ``tuning`` stage
 (:mod:`pipeline.analysis.tuning_stage`): map the analysis kernels over the session store.
 
-Inputs (written by earlier stages):
+Inputs of both stages (written by earlier stages):
 
 ``session.zarr/traces/{dff,events}``   (n_cells, n_volumes) activity, row i = cells.parquet row i
 ``cells.parquet``                      ``id``, ``plane``, ``z_um``, ``y_um``, ``x_um``
@@ -15,8 +15,8 @@ Inputs (written by earlier stages):
 ``align/behaviour_t_scope_s``
 
 A cell in plane ``z`` is sampled at plane ``z``'s times, so the tuning regressors of that cell
-are the fine-grid regressors sampled at plane ``z``'s times. The decoders use all cells together and one target
-per volume: the plane average of the turn command.
+are the fine-grid regressors sampled at plane ``z``'s times. The decoders use all cells
+together and one target per volume: the plane average of the turn command.
 """
 
 from __future__ import annotations
@@ -184,15 +184,17 @@ def _write_weight_maps(store, weights, pattern, lag_s):
     except StoreError:
         store.warn("no cell label volume: decoder weight map not painted")
         return
-    for name, values, unit in (("weight_map", weights, "turn units per activity unit"),
-                               ("pattern_map", pattern, "activity units per turn unit")):
-        lut = _cell_lut(cells["id"].to_numpy(), values)
-        arr = store.create_array(f"decode/{name}", shape=tuple(labels.shape), dtype="float32",
-                                 chunks=(1, *labels.shape[1:]), fill_value=np.nan,
-                                 dimension_names=("z", "y", "x"),
-                                 attrs={"unit": unit, "lag_s": lag_s})
-        for z in range(labels.shape[0]):
-            arr[z] = _painted(lut, labels[z])
+    maps = [(store.create_array(f"decode/{name}", shape=tuple(labels.shape), dtype="float32",
+                                chunks=(1, *labels.shape[1:]), fill_value=np.nan,
+                                dimension_names=("z", "y", "x"),
+                                attrs={"unit": unit, "lag_s": lag_s}),
+             _cell_lut(cells["id"].to_numpy(), values))
+            for name, values, unit in (("weight_map", weights, "turn units per activity unit"),
+                                       ("pattern_map", pattern, "activity units per turn unit"))]
+    for z in range(labels.shape[0]):           # each label plane read once for both maps
+        lab = np.asarray(labels[z])
+        for arr, lut in maps:
+            arr[z] = _painted(lut, lab)
 
 
 def _cell_lut(ids, values):

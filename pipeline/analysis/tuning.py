@@ -48,6 +48,7 @@ __all__ = [
     "tuned_flags",
     "population_summary",
     "within_trial_alone_r2",
+    "trial_indicators",
 ]
 
 EPOCHS = ("pre", "between", "post")
@@ -218,6 +219,12 @@ def fit_von_mises(centres_rad, values, *, max_kappa=50.0):
                        float(se[1]), True)
 
 
+def trial_indicators(trial):
+    """One 0/1 column per trial (sorted trial ids): per-trial intercepts for a design."""
+    trial = np.asarray(trial)
+    return (trial[:, None] == np.unique(trial)[None, :]).astype(np.float64)
+
+
 def within_trial_alone_r2(activity, columns, *, trial, nuisance=None):
     """Each target's alone R^2 beyond the nuisance and one intercept per trial.
 
@@ -250,7 +257,7 @@ def within_trial_alone_r2(activity, columns, *, trial, nuisance=None):
         raise InputError(f"within_trial_alone_r2: expected activity ({n}, n_cells) and columns "
                          f"({n}, n_targets, m) for {n} trial labels, got {y.shape} and "
                          f"{cols.shape}")
-    fe = (trial[:, None] == np.unique(trial)[None, :]).astype(np.float64)
+    fe = trial_indicators(trial)
     z = fe if nuisance is None else np.concatenate(
         [fe, np.asarray(nuisance, dtype=np.float64).reshape(n, -1)], axis=1)
     q = _orth(z)                                  # the trial indicators span the intercept

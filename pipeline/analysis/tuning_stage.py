@@ -31,6 +31,7 @@ from pipeline.analysis.tuning import (
     curve_preference,
     fit_von_mises,
     population_summary,
+    trial_indicators,
     tuned_flags,
     tuning_curves,
     unique_variance_test,
@@ -71,7 +72,7 @@ def _tuning_task(rows, activity_path, design, options):
     perms = design["perms"]
     fixed = None
     if options["trial_intercepts"]:
-        fixed = (trial[:, None] == np.unique(trial)[None, :]).astype(float)
+        fixed = trial_indicators(trial)
     out = []
     for e, epoch in enumerate(design["epochs"]):
         inside = epoch_of == epoch
@@ -115,14 +116,17 @@ def _plane_design(reg, t_fine, z, plane_t, trial_z, bearing_z, split_s, options)
     if idx.size < 10 or np.unique(trial_z[idx]).size < 3:
         return None
     t = plane_t[idx]
-    motor = sample_columns(t_fine, reg["motor"], t)
-    if options["baseline"] is not None and motor.shape[1]:
-        # the dF/F baseline saw every sample of the plane, not only the analysis windows
+    if options["baseline"] is not None and reg["motor"].shape[1]:
+        # the dF/F baseline saw every sample of the plane, not only the analysis windows:
+        # sample the motor terms at all of them once, and take the windows' rows from there
         fin = np.isfinite(plane_t)
+        full = np.full((plane_t.size, reg["motor"].shape[1]), np.nan)
+        full[fin] = sample_columns(t_fine, reg["motor"], plane_t[fin])
         extra = np.full((plane_t.size, 5), np.nan)
-        extra[fin] = baseline_columns(sample_columns(t_fine, reg["motor"], plane_t[fin]),
-                                      options["leads_s"], **options["baseline"])
-        motor = np.concatenate([motor, extra[idx]], axis=1)
+        extra[fin] = baseline_columns(full[fin], options["leads_s"], **options["baseline"])
+        motor = np.concatenate([full[idx], extra[idx]], axis=1)
+    else:
+        motor = sample_columns(t_fine, reg["motor"], t)
     return {"samples": idx, "epoch_of": epoch_of[idx], "trial": trial_z[idx],
             "epochs": reg["epochs"], "bearing": bearing_z[idx],
             "terms": sample_columns(t_fine, reg["terms"], t),
@@ -318,14 +322,16 @@ def _paint(store, cells, grid, tuned, names, epochs):
     ids = cells["id"].to_numpy()
     n_t, n_e = len(names), len(epochs)
     attrs = {"targets": names, "epochs": epochs}
+    maps = []                                  # (array, target, epoch, look-up table)
     for what in ("preferred_rad", "selectivity"):
         arr = store.create_array(f"tuning/{what}", shape=(n_t, n_e, *labels.shape),
                                  dtype="float32", chunks=(1, 1, 1, *labels.shape[1:]),
                                  fill_value=np.nan, dimension_names=("target", "epoch", "z",
                                                                      "y", "x"),
                                  attrs={**attrs, "unit": "rad" if what.endswith("rad") else ""})
-        for k in range(n_t):
-            for e in range(n_e):
-                lut = _cell_lut(ids, np.where(tuned[k, e], grid[what][k, e], np.nan))
-                for z in range(labels.shape[0]):
-                    arr[k, e, z] = _painted(lut, labels[z])
+        maps += [(arr, k, e, _cell_lut(ids, np.where(tuned[k, e], grid[what][k, e], np.nan)))
+                 for k in range(n_t) for e in range(n_e)]
+    for z in range(labels.shape[0]):           # each label plane read once for every map
+        lab = np.asarray(labels[z])
+        for arr, k, e, lut in maps:
+            arr[k, e, z] = _painted(lut, lab)

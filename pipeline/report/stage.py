@@ -355,22 +355,22 @@ def _tuning(ctx: _Ctx) -> str:
         los.append(float(low))
         his.append(float(high))
     fig = F.fraction_tuned_figure(labels, np.asarray(frac), np.asarray(los), np.asarray(his))
-    amb = ""
+    notes = ""
     if "ambiguous" in tun and "epoch" in tun:
         a = tun[tun["ambiguous"].astype(bool)].drop_duplicates([cell, "epoch"])
         counts = a.groupby("epoch").size()
         if len(counts):
-            amb = (" Not shown: cells tuned to bearing whose target could not be named (the "
-                   "target explaining most over the session and within trials differ): "
-                   + ", ".join(f"{n} {e}" for e, n in counts.items()) + ".")
+            notes = (" Not shown: cells tuned to bearing whose target could not be named (the "
+                     "target explaining most over the session and within trials differ): "
+                     + ", ".join(f"{n} {e}" for e, n in counts.items()) + ".")
     between = s.record("tuning").get("info", {}).get("between_epoch")
     if between == "merged into post":
-        amb += (" Epochs are cut at each trial's first split: too few trials had two splits "
-                "to test the stretch between them on its own, so it is part of 'post'.")
+        notes += (" Epochs are cut at each trial's first split: too few trials had two splits "
+                  "to test the stretch between them on its own, so it is part of 'post'.")
     out.append(ctx.figure("fraction_tuned", fig,
                           "Fraction of cells tuned to each target's bearing before and after "
                           "the split (Benjamini-Hochberg q below the configured level), with "
-                          "Wilson 95% intervals." + amb))
+                          "Wilson 95% intervals." + notes))
     sel = _pick(tun.columns, "selectivity")
     panels = []
     for key, g in groups:

@@ -122,10 +122,8 @@ def _register_group(group: tuple[int, int], volumes_path: str, reference_path: s
     shifts = np.zeros((n, 3))
     quality = np.ones(n)
     for i, t in enumerate(range(*group)):
-        if acc.n == BLOCK32_MAX_VOLUMES:
-            total = (SummaryAccumulator.empty(reference.shape, neighbourhood=neighbourhood,
-                                              offset=reference) if total is None else total)
-            total.merge(acc)
+        if acc.n == BLOCK32_MAX_VOLUMES:       # fold the float32 run into float64
+            total = _resolve(acc, reference, neighbourhood) if total is None else total.merge(acc)
             acc = block()
         vol = _get(arr, t)
         if prep is not None:

@@ -32,6 +32,7 @@ of :meth:`SummaryAccumulator.update_shifted`), a task's memory and the spilled f
 
 from __future__ import annotations
 
+import os
 from collections.abc import Sequence
 from dataclasses import dataclass, field
 
@@ -268,8 +269,6 @@ class SummaryAccumulator:
                               f"neighbourhood {spilled.neighbourhood} into shape {self.shape} "
                               f"/ neighbourhood {self.neighbourhood}")
         self._check_room(spilled.n)
-        import os
-
         for name in self._SUMS:
             file = f"{spilled.path}.{name}.npy"
             part = np.load(file, mmap_mode="r")
@@ -297,7 +296,7 @@ class SummaryAccumulator:
         if not same_offset:
             raise ConfigError("cannot merge accumulators built with different offsets")
         self._check_room(other.n)
-        for name in ("sum_x", "sum_xx", "sum_xn", "sum_nn"):
+        for name in self._SUMS:
             getattr(self, name).__iadd__(getattr(other, name))
         self.n += other.n
         return self
