@@ -17,6 +17,7 @@ import scipy.ndimage as ndi
 import scipy.sparse as sp
 
 from pipeline.errors import ConfigError, InputError
+from pipeline.volumes.summary_kernels import _taps
 
 __all__ = ["SamplingWeights", "build_weights", "sample_volume", "ellipsoid_offsets"]
 
@@ -268,13 +269,9 @@ def _gather_trilinear(volume, coords, base, frac, out):  # pragma: no cover - co
     tz = np.empty((2, nz), np.int64)
     ty = np.empty((2, ny), np.int64)
     tx = np.empty((2, nx), np.int64)
-    for a in range(2):
-        for i in range(nz):
-            tz[a, i] = min(max(i + base[0] + a, 0), nz - 1)
-        for i in range(ny):
-            ty[a, i] = min(max(i + base[1] + a, 0), ny - 1)
-        for i in range(nx):
-            tx[a, i] = min(max(i + base[2] + a, 0), nx - 1)
+    tz[0], tz[1] = _taps(nz, base[0])          # clipped lower and upper tap of every index
+    ty[0], ty[1] = _taps(ny, base[1])
+    tx[0], tx[1] = _taps(nx, base[2])
     w = np.empty((2, 2, 2))
     for a in range(2):
         wz = frac[0] if a == 1 else 1.0 - frac[0]
