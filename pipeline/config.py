@@ -229,6 +229,10 @@ class TracesSettings:
     baseline_window_s: float = _f(60.0, doc="running-percentile baseline window", unit="s",
                                   gt=0.0)
     baseline_percentile: float = _f(20.0, doc="percentile of the baseline", gt=0.0, lt=100.0)
+    baseline_exclude_sigma: float = _f(2.0, doc="samples more than this many noise sigmas "
+                                       "above a first baseline are left out of the baseline "
+                                       "(twice), so sustained activity does not lift it "
+                                       "(0 = plain running percentile)", ge=0.0)
     ring_margin_um: float = _f(1.0, doc="ring voxels closer than this to any cell are left out",
                                unit="um", ge=0.0)
     ring_max_voxels: int = _f(400, doc="nearest ring voxels kept per cell", ge=1)
