@@ -305,7 +305,11 @@ class TuningSettings:
         "'separate' = their own 'between' epoch; 'merged' = part of 'post' (epochs cut at each "
         "trial's first split only); 'auto' = merged when fewer than min_epoch_trials trials "
         "have two splits (a 'between' epoch that could not be tested would lose its samples)")
-    null: Literal["trial", "circular"] = _f("trial", doc="trial shuffle or circular shift")
+    null: Literal["aligned", "trial", "circular"] = _f(
+        "aligned", doc="'aligned': each trial's samples get the bearing terms of another trial "
+        "showing the same targets, aligned at the first split; 'trial': whole trials "
+        "re-concatenated in a random order (anti-conservative for sparse activity when trials "
+        "differ in length); 'circular': circular shifts")
     min_shift_s: float = _f(20.0, doc="minimum circular shift", unit="s", ge=0.0)
     fdr_q: float = _f(0.05, doc="Benjamini-Hochberg level", gt=0.0, lt=1.0)
     trial_intercepts: bool = _f(False, doc="one intercept per trial, never permuted: only "
