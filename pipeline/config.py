@@ -229,6 +229,10 @@ class TracesSettings:
     baseline_window_s: float = _f(60.0, doc="running-percentile baseline window", unit="s",
                                   gt=0.0)
     baseline_percentile: float = _f(20.0, doc="percentile of the baseline", gt=0.0, lt=100.0)
+    baseline_exclude_sigma: float = _f(2.0, doc="samples more than this many noise sigmas "
+                                       "above a first baseline are left out of the baseline "
+                                       "(twice), so sustained activity does not lift it "
+                                       "(0 = plain running percentile)", ge=0.0)
     ring_margin_um: float = _f(1.0, doc="ring voxels closer than this to any cell are left out",
                                unit="um", ge=0.0)
     ring_max_voxels: int = _f(400, doc="nearest ring voxels kept per cell", ge=1)
@@ -301,7 +305,11 @@ class TuningSettings:
         "'separate' = their own 'between' epoch; 'merged' = part of 'post' (epochs cut at each "
         "trial's first split only); 'auto' = merged when fewer than min_epoch_trials trials "
         "have two splits (a 'between' epoch that could not be tested would lose its samples)")
-    null: Literal["trial", "circular"] = _f("trial", doc="trial shuffle or circular shift")
+    null: Literal["aligned", "trial", "circular"] = _f(
+        "aligned", doc="'aligned': each trial's samples get the bearing terms of another trial "
+        "showing the same targets, aligned at the first split; 'trial': whole trials "
+        "re-concatenated in a random order (anti-conservative for sparse activity when trials "
+        "differ in length); 'circular': circular shifts")
     min_shift_s: float = _f(20.0, doc="minimum circular shift", unit="s", ge=0.0)
     fdr_q: float = _f(0.05, doc="Benjamini-Hochberg level", gt=0.0, lt=1.0)
     trial_intercepts: bool = _f(False, doc="one intercept per trial, never permuted: only "

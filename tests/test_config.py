@@ -66,7 +66,7 @@ BAD = [
     ("\n[traces]\nring_inner_um = 5.0\nring_outer_um = 2.0\n", r"ring_outer_um = 2\.0 must be"),
     ("\n[decode]\nlag_min_s = 2.0\nlag_max_s = -1.0\n", r"lag_max_s = -1\.0 is below"),
     ("\n[decode]\nalphas = [1.0, -3.0]\n", r"decode\.alphas\[1\] = -3\.0: expected a value > 0"),
-    ("\n[tuning]\nnull = 'shuffle'\n", r"tuning\.null = 'shuffle': expected one of 'trial'"),
+    ("\n[tuning]\nnull = 'shuffle'\n", r"tuning\.null = 'shuffle': expected one of 'aligned'"),
     ("\n[behaviour]\nlog = 'missing.csv'\n", r"behaviour\.log = 'missing\.csv': no such file"),
     ("\n[behaviour]\nlog = 'x.toml'\ntime_unit = 'min'\n",
      r"behaviour\.time_unit = 'min': expected one of 's', 'ms', 'us'"),

@@ -187,36 +187,34 @@ def test_decoder_weight_map_separates_premotor_sides(run):
 # ---- tuning ---------------------------------------------------------------------------------
 def test_tuning_finds_planted_bearing_cells(run):
     r = tuning_recovery(run)
-    # measured on seed 0 (300 permutations; joint indicator-filtered model, motor nuisance
-    # kept fixed, epochs cut at each trial's first split, a target named only when the
-    # evidence over the session and within trials agrees; splits re-timed with the
-    # critical-angle prior; dF/F baseline terms in the motor nuisance): sensitivity 0.55,
-    # false discovery proportion 0.20 (10 of 49 flagged keys: 3 bearing cells attributed to a
-    # correlated other target, 2 in a wrong epoch, 2 untuned, 2 vigor, 1 premotor), preferred
-    # bearing median error ~14 deg with 82% within 20 deg (without the baseline terms 0.52,
-    # 0.18; seeds 1, 2: 0.47, 0.25 and 0.47, 0.25, before 0.47, 0.28 and 0.33, 0.24; without
-    # the split prior: 0.47, 0.13). Before (attribution by the whole-session fit alone,
-    # separate between epoch): 0.54, 0.19, 12 deg, 79%. The floors are in the xfail below
-    # (and on the default preset in test_demo_floors.py); these bounds guard against
-    # regressions.
+    # measured on seed 0 (300 permutations; split-aligned trial swap within trials showing
+    # the same targets; dF/F baseline without the samples of activity; joint
+    # indicator-filtered model, motor nuisance kept fixed, epochs cut at each trial's first
+    # split, a target named only when the evidence over the session and within trials
+    # agrees; splits re-timed with the critical-angle prior; dF/F baseline terms in the
+    # motor nuisance): sensitivity 0.35, false discovery proportion 0.19, preferred bearing
+    # median error ~16 deg with 68 % within 20 deg (seeds 1, 2: 0.36, 0.35 and 0.35, 0.23).
+    # With the old re-concatenation null (anti-conservative, DEVELOPERS.md) 0.55, 0.20. The
+    # small preset's 16 short trials (~5 with three targets) leave the calibrated null little
+    # room. The floors are in the xfail below (and on the default preset in
+    # test_demo_floors.py); these bounds guard against regressions.
     tun = run["session"].tuning
     assert not (tun["tuned"] & tun["ambiguous"]).any()   # an ambiguous cell names no target
     # tuning.between_epoch = "auto": the between epoch is its own only with >= 8 such trials
     n_two = int((run["session"].splits.groupby("trial").size() >= 2).sum())
     between = run["session"].record("tuning")["info"]["between_epoch"]
     assert between == ("separate" if n_two >= 8 else "merged into post")
-    assert r["sensitivity"] >= 0.38
+    assert r["sensitivity"] >= 0.3
     assert r["fdr"] <= 0.25
     assert r["median_err_deg"] <= 20.0
-    assert r["within_20"] >= 0.7
+    assert r["within_20"] >= 0.6
 
 
-@pytest.mark.xfail(strict=True, reason="observed false discovery proportion 0.20 and "
-                   "sensitivity 0.55 at q = 0.05 on seed 0 (small preset, 300 permutations; "
-                   "before the split prior, 1,000 permutations: 0.14, 0.54; seeds 1, 2: "
-                   "0.25, 0.47 and 0.25, 0.47): "
+@pytest.mark.xfail(strict=True, reason="observed false discovery proportion 0.19 and "
+                   "sensitivity 0.35 at q = 0.05 on seed 0 (small preset, 300 permutations, "
+                   "split-aligned trial swap; seeds 1, 2: 0.35, 0.36 and 0.23, 0.35): "
                    "bearing cells attributed to a correlated other target (the targets' "
-                   "bearings are nearly collinear on ~14 short trials) and untuned cells")
+                   "bearings are nearly collinear on ~16 short trials) and untuned cells")
 def test_tuning_false_discoveries_controlled(run):
     # Benjamini-Hochberg at q = 0.05 (Benjamini & Hochberg 1995): allow twice the level
     assert tuning_recovery(run)["fdr"] <= 0.1
@@ -244,6 +242,9 @@ def test_report_has_every_section_and_image(run):
     for name in ("sync", "trajectories", "split_angle", "decode_turn_r2", "confusion",
                  "fraction_tuned", "bearing_map", "tuning_curves"):
         assert any(name in src for src in parser.src), name
+    # the tuning caption names the null it used and its assumption
+    assert "aligned at the first split, 300 permutations" in text
+    assert "trials are exchangeable" in text
 
 
 def test_session_api_on_the_real_store(run):

@@ -117,9 +117,9 @@ class UniqueVariance:
     alone_r2: np.ndarray | None = None   # (n_targets, n_cells) target k alone beyond nuisance
 
 
-def unique_variance_test(activity, bearings_rad=None, *, perm_index, nuisance=None,
+def unique_variance_test(activity, bearings_rad=None, *, perm_index=None, nuisance=None,
                          fixed_nuisance=None, n_harmonics=1, columns=None,
-                         block_cells=4096, dtype=np.float32):
+                         block_cells=4096, dtype=np.float32, perm_columns=None):
     """Bearing terms of every target against activity, with a calibrated permutation null.
 
     The model is ``activity ~ intercept + nuisance + sum_k X_k``, where ``X_k`` holds target
@@ -147,9 +147,15 @@ def unique_variance_test(activity, bearings_rad=None, *, perm_index, nuisance=No
     bearings_rad : ndarray of shape (n_samples, n_targets), optional
         Bearings; their ``cos``/``sin`` harmonics are the target columns. Ignored when
         ``columns`` is given.
-    perm_index : ndarray of int, shape (n_permutations, n_samples)
+    perm_index : ndarray of int, shape (n_permutations, n_samples), optional
         Row order of the target columns in each permutation (``trial_shuffle_indices`` or
         ``circular_shift_indices``).
+    perm_columns : array of shape (n_permutations, n_samples, n_targets, m), optional
+        The target columns of each permutation given outright (a null that is not a row
+        reordering, e.g. behaviour of other trials aligned at the split,
+        :func:`pipeline.analysis.stats.split_aligned_swap_times`); instead of ``perm_index``.
+        Any object with ``shape`` whose slices along the first axis are arrays will do, so
+        the permutations can be gathered batch by batch.
     nuisance, fixed_nuisance : ndarray of shape (n_samples, q), optional
         Regressors every model keeps, tied to the activity rows and never permuted (motor terms,
         epoch levels, one indicator per trial...). Both are treated alike (``fixed_nuisance``
@@ -185,7 +191,8 @@ def unique_variance_test(activity, bearings_rad=None, *, perm_index, nuisance=No
     y_all = np.asarray(activity)
     null = permutation_bases(y_all.shape[0], bearings_rad, perm_index=perm_index,
                              nuisance=nuisance, fixed_nuisance=fixed_nuisance,
-                             n_harmonics=n_harmonics, columns=columns, dtype=dtype)
+                             n_harmonics=n_harmonics, columns=columns, dtype=dtype,
+                             perm_columns=perm_columns)
     return null.test(y_all, block_cells=block_cells)
 
 
@@ -263,8 +270,9 @@ class PermutationBases:
         return UniqueVariance(uniq, pval, full_r2, bear, n_perm, joint_r2, p_joint, alone)
 
 
-def permutation_bases(n, bearings_rad=None, *, perm_index, nuisance=None, fixed_nuisance=None,
-                      n_harmonics=1, columns=None, dtype=np.float32):
+def permutation_bases(n, bearings_rad=None, *, perm_index=None, nuisance=None,
+                      fixed_nuisance=None, n_harmonics=1, columns=None, dtype=np.float32,
+                      perm_columns=None):
     """Bases of the observed design and of every permutation (see :func:`unique_variance_test`).
 
     Returns
@@ -282,26 +290,44 @@ def permutation_bases(n, bearings_rad=None, *, perm_index, nuisance=None, fixed_
         cols = np.asarray(columns, dtype=np.float64)
         if cols.ndim != 3 or cols.shape[0] != n:
             raise InputError(f"columns: expected shape ({n}, n_targets, m), got {cols.shape}")
-    perm_index = np.asarray(perm_index)
-    if perm_index.ndim != 2 or perm_index.shape[1] != n:
-        raise InputError(f"perm_index: expected shape (n_permutations, {n}), got "
-                         f"{perm_index.shape}")
     n_t, m = cols.shape[1], cols.shape[2]
-    n_perm = perm_index.shape[0]
+    if perm_columns is not None:
+        if not hasattr(perm_columns, "shape"):  # anything sliceable with a shape stays lazy
+            perm_columns = np.asarray(perm_columns)
+        if len(perm_columns.shape) != 4 or tuple(perm_columns.shape[1:]) != cols.shape:
+            raise InputError(f"perm_columns: expected shape (n_permutations, {n}, {n_t}, {m}), "
+                             f"got {perm_columns.shape}")
+        n_perm = perm_columns.shape[0]
+
+        def batch(a, b):  # rows a..b of [observed, permutation 1, ...]
+            parts = ([cols[None]] if a == 0 else []) + [
+                np.asarray(perm_columns[max(a - 1, 0): b - 1], dtype=np.float64)]
+            return np.concatenate(parts, axis=0)
+    else:
+        if perm_index is None:
+            raise InputError("unique_variance_test: give perm_index or perm_columns")
+        perm_index = np.asarray(perm_index)
+        if perm_index.ndim != 2 or perm_index.shape[1] != n:
+            raise InputError(f"perm_index: expected shape (n_permutations, {n}), got "
+                             f"{perm_index.shape}")
+        n_perm = perm_index.shape[0]
+        orders = np.vstack([np.arange(n)[None, :], perm_index])
+
+        def batch(a, b):
+            return cols[orders[a: b]]
     parts = [np.ones((n, 1))] + [np.asarray(a, dtype=np.float64).reshape(n, -1)
                                  for a in (nuisance, fixed_nuisance) if a is not None]
     z_all = np.concatenate(parts, axis=1)
     q_nuis = _orth(z_all)
-    orders = np.vstack([np.arange(n)[None, :], perm_index])
     width = n_t * m
     stack = np.empty((n, n_perm + 1, 2, width), dtype=dtype)
     step = max(1, int(2**24 // (n * width * 8)))              # ~16 MB of float64 per batch
     for a in range(0, n_perm + 1, step):
-        order = orders[a: a + step]
-        uniq_b, joint_b = _bases(cols[order], q_nuis)
-        stack[:, a: a + order.shape[0], 0] = uniq_b.reshape(order.shape[0], n, width) \
+        block = batch(a, min(a + step, n_perm + 1))
+        uniq_b, joint_b = _bases(block, q_nuis)
+        stack[:, a: a + block.shape[0], 0] = uniq_b.reshape(block.shape[0], n, width) \
             .transpose(1, 0, 2)
-        stack[:, a: a + order.shape[0], 1] = joint_b.transpose(1, 0, 2)
+        stack[:, a: a + block.shape[0], 1] = joint_b.transpose(1, 0, 2)
     uniq0, joint0 = _bases(cols[None], q_nuis)
     uniq0, joint0 = uniq0[0].reshape(n, width), joint0[0]
     stack2 = stack.reshape(n, -1)

@@ -38,6 +38,7 @@ __all__ = [
     "bearing_columns",
     "motor_columns",
     "sample_columns",
+    "trial_anchors",
     "uniform_grid",
     "window_epochs",
     "tuning_regressors",
@@ -327,3 +328,39 @@ def baseline_columns(motor, leads_s, *, percentile, window):
     j = int(np.argmin(np.abs(leads)))
     cols = motor[:, 5 * j: 5 * (j + 1)]
     return running_percentile(cols.T, percentile, int(window)).T
+
+
+def trial_anchors(t_s, trial, bearing_rad, split_s):
+    """Each trial's first split and span, and which targets it shows (the swap null's anchors).
+
+    Parameters
+    ----------
+    t_s : ndarray of shape (n,)
+        Fine grid (imaging clock).
+    trial : ndarray of int, shape (n,)
+        Trial of each sample; negative outside trials.
+    bearing_rad : ndarray of shape (n, n_targets)
+        Bearings, NaN where a target is absent.
+    split_s : dict of int to array_like
+        Split times of each trial.
+
+    Returns
+    -------
+    anchors : dict of int to (first split, trial start, trial end), in seconds
+        Trials with a finite split and samples on the grid only.
+    kinds : dict of int to int
+        Bit ``k`` set when target ``k`` is shown in the trial.
+    """
+    t_s = np.asarray(t_s, dtype=np.float64)
+    trial = np.asarray(trial)
+    shown = np.isfinite(np.asarray(bearing_rad, dtype=np.float64).reshape(t_s.size, -1))
+    anchors, kinds = {}, {}
+    for tr, times in split_s.items():
+        times = np.asarray(times, dtype=np.float64)
+        on = trial == tr
+        if not (np.isfinite(times).any() and on.any()):
+            continue
+        at = t_s[on]
+        anchors[int(tr)] = (float(np.nanmin(times)), float(at[0]), float(at[-1]))
+        kinds[int(tr)] = int(sum(1 << k for k in np.flatnonzero(shown[on].any(axis=0))))
+    return anchors, kinds

@@ -22,6 +22,9 @@ __all__ = [
     "binomial_interval",
     "circular_shift_indices",
     "trial_shuffle_indices",
+    "split_aligned_swap_times",
+    "swap_donor_times",
+    "swap_orders",
 ]
 
 
@@ -346,4 +349,100 @@ def trial_shuffle_indices(trial_ids, n_permutations, *, seed=0):
         while np.array_equal(order, ident):
             order = gen.permutation(n_trials)
         out[i] = np.concatenate([blocks[j] for j in order])
+    return out
+
+
+def split_aligned_swap_times(t_s, trial, anchors, *, n_permutations, kinds=None, seed=0):
+    """Source times of a trial swap aligned at each trial's split (a null for tuning tests).
+
+    In permutation ``i`` the sample of trial ``A`` at time ``s_A + tau`` (``s_A`` its first
+    split) takes the behaviour of trial ``pi_i(A)`` at ``s_pi(A) + tau``, clipped to that
+    trial's span; ``pi_i`` permutes the trials within each kind (trials showing the same
+    targets) and is never the identity. The swapped regressors keep their place relative to
+    the split, their smoothness and their presence gates, so under the null they are
+    exchangeable with the observed ones; a re-concatenation of whole trials of unequal length
+    (:func:`trial_shuffle_indices`) instead moves every boundary and, for sparse
+    autocorrelated activity, was measured anti-conservative (see DEVELOPERS.md).
+
+    Parameters
+    ----------
+    t_s : ndarray of shape (n_samples,)
+        Times of the samples tested.
+    trial : ndarray of int, shape (n_samples,)
+        Trial of each sample; every trial needs an entry in ``anchors``.
+    anchors : dict of int to (split, start, end)
+        Each trial's first split and its span (same clock as ``t_s``).
+    n_permutations : int
+    kinds : dict of int to int, optional
+        Each trial's kind; trials are swapped only within a kind (kinds with a single trial
+        keep it). All one kind when omitted.
+    seed : int, default=0
+
+    Returns
+    -------
+    ndarray of float64, shape (n_permutations, n_samples)
+        The time of the behaviour each sample gets in each permutation.
+
+    Raises
+    ------
+    InputError
+        A trial without an anchor, or no two trials of one kind to swap.
+
+    References
+    ----------
+    Harris KD (2020). Nonsense correlations in neuroscience. bioRxiv 2020.11.29.402719
+    (nulls that keep each series' own structure).
+    Winkler AM et al. (2015). Multi-level block permutation. NeuroImage 123:253-268
+    (exchangeability blocks: permutations only within blocks). doi:10.1016/j.neuroimage.2015.05.092
+    """
+    donors, table = swap_donor_times(t_s, trial, anchors)
+    order = swap_orders(trial, n_permutations, kinds=kinds, seed=seed)
+    return donors[order, np.arange(np.size(t_s))[None, :]]
+
+
+def swap_donor_times(t_s, trial, anchors):
+    """For every trial ``B`` and sample ``j``: the time of ``B`` aligned with sample ``j``.
+
+    Returns
+    -------
+    donors : ndarray of shape (n_trials, n_samples)
+        ``clip(split_B + (t_j - split_A(j)), start_B, end_B)``, trials in sorted id order.
+    table : ndarray of shape (n_trials, 3)
+        (split, start, end) of each trial.
+    """
+    t_s = np.asarray(t_s, dtype=np.float64)
+    ids = np.unique(np.asarray(trial))
+    missing = [int(i) for i in ids if int(i) not in anchors]
+    if missing:
+        raise InputError(f"trial swap: trial {missing[0]} has no split to align on")
+    table = np.array([anchors[int(i)] for i in ids], dtype=np.float64).reshape(-1, 3)
+    rel = t_s - table[np.searchsorted(ids, trial), 0]
+    donors = np.clip(table[:, :1] + rel[None, :], table[:, 1:2], table[:, 2:3])
+    return donors, table
+
+
+def swap_orders(trial, n_permutations, *, kinds=None, seed=0):
+    """Donor trial of every sample in every permutation of the split-aligned swap.
+
+    Returns
+    -------
+    ndarray of int32, shape (n_permutations, n_samples)
+        Index (into the sorted trial ids) of the trial whose behaviour each sample gets.
+    """
+    trial = np.asarray(trial)
+    ids = np.unique(trial)
+    own = np.searchsorted(ids, trial)
+    kind = np.array([0 if kinds is None else kinds.get(int(i), 0) for i in ids])
+    groups = [g for g in (np.flatnonzero(kind == k) for k in np.unique(kind)) if g.size >= 2]
+    if not groups:
+        raise InputError(f"trial swap: no two trials of one kind to swap ({ids.size} trials)")
+    gen = np.random.default_rng(seed)
+    ident = np.arange(ids.size)
+    out = np.empty((int(n_permutations), trial.size), dtype=np.int32)
+    for i in range(int(n_permutations)):
+        order = ident.copy()
+        while np.array_equal(order, ident):
+            for g in groups:
+                order[g] = g[gen.permutation(g.size)]
+        out[i] = order[own]
     return out

@@ -7,8 +7,9 @@ Two views of each cell, per target and epoch:
 * inferential: a linear model of the cell's activity on the bearing terms of *every* target
   together plus nuisance terms (:mod:`pipeline.analysis.permtest`; the stage builds the terms
   with :mod:`pipeline.analysis.regressors`): the joint test of all targets, each target's
-  unique explained variance, and a permutation null (whole trials, or circular shifts) that
-  keeps each cell's autocorrelation, computed as GEMMs;
+  unique explained variance, and a permutation null (trials swapped at the split, whole
+  trials re-concatenated, or circular shifts) that keeps each cell's autocorrelation,
+  computed as GEMMs;
 * attribution: which target a significant cell follows, from each target's alone R^2 over
   the whole session and within trials (:func:`within_trial_alone_r2`); the stage names a
   target only when the two agree and marks the cell ambiguous otherwise.

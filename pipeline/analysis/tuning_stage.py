@@ -14,6 +14,7 @@ import zarr
 from pipeline.analysis.regressors import (
     baseline_columns,
     sample_columns,
+    trial_anchors,
     tuning_regressors,
     uniform_grid,
     window_epochs,
@@ -26,7 +27,12 @@ from pipeline.analysis.stages import (
     _painted,
     _scope_times,
 )
-from pipeline.analysis.stats import circular_shift_indices, trial_shuffle_indices
+from pipeline.analysis.stats import (
+    circular_shift_indices,
+    swap_donor_times,
+    swap_orders,
+    trial_shuffle_indices,
+)
 from pipeline.analysis.tuning import (
     curve_preference,
     fit_von_mises,
@@ -69,7 +75,6 @@ def _tuning_task(rows, activity_path, design, options):
     y = act[idx]
     terms, levels, motor = design["terms"], design["levels"], design["motor"]
     trial = design["trial"]
-    perms = design["perms"]
     fixed = None
     if options["trial_intercepts"]:
         fixed = trial_indicators(trial)
@@ -85,7 +90,7 @@ def _tuning_task(rows, activity_path, design, options):
         others = [terms[:, f].reshape(idx.size, -1) for f in range(terms.shape[1]) if f != e]
         nuis = np.concatenate(others + [levels.reshape(idx.size, -1), motor], axis=1)
         res = unique_variance_test(y, columns=terms[:, e][:, keep], nuisance=nuis,
-                                   fixed_nuisance=fixed, perm_index=perms)
+                                   fixed_nuisance=fixed, **_null_of(design, e, keep))
         best = np.asarray(keep)[np.argmax(res.alone_r2, axis=0)]
         # which target the variation within trials follows best (trial intercepts added; no
         # permutations): "consistent" attribution needs it to agree with ``best``
@@ -132,7 +137,46 @@ def _plane_design(reg, t_fine, z, plane_t, trial_z, bearing_z, split_s, options)
             "terms": sample_columns(t_fine, reg["terms"], t),
             "levels": sample_columns(t_fine, reg["levels"], t),
             "motor": motor,
-            "perms": _perms(trial_z[idx], options, seed=options["seed"] + int(z))}
+            "perms": (None if options["null"] == "aligned"
+                      else _perms(trial_z[idx], options, seed=options["seed"] + int(z))),
+            "swap": (_swap_design(reg, t_fine, t, trial_z[idx], options,
+                                  seed=options["seed"] + int(z))
+                     if options["null"] == "aligned" else None)}
+
+
+def _null_of(design, e, keep):
+    """The permutation arguments of epoch ``e``'s test (the swap's or a row reordering)."""
+    if design["swap"] is not None:
+        terms, order = design["swap"]
+        return {"perm_columns": _SwappedColumns(terms[:, :, e][:, :, keep], order)}
+    return {"perm_index": design["perms"]}
+
+
+class _SwappedColumns:
+    """The bearing terms of every permutation of the split-aligned swap, gathered on demand.
+
+    ``self[a:b]`` is ``(b - a, n_samples, n_targets, m)``: each sample's terms taken from its
+    donor trial in permutations ``a..b``. Holding one table of every trial's terms at every
+    sample (``n_trials x n_samples``) instead of all permutations keeps a plane's null to a
+    few MB, built batch by batch inside :func:`pipeline.analysis.permtest.permutation_bases`.
+    """
+
+    def __init__(self, donor_terms, order):
+        self.donor_terms, self.order = donor_terms, order
+        self.shape = (order.shape[0], *donor_terms.shape[1:])
+        self.ndim = 4
+
+    def __getitem__(self, sl):
+        rows = self.order[sl]
+        return self.donor_terms[rows, np.arange(rows.shape[1])[None, :]]
+
+
+def _swap_design(reg, t_fine, t, trial, options, *, seed):
+    """Every trial's terms aligned with every sample, and each permutation's donors."""
+    donors, _ = swap_donor_times(t, trial, options["anchors"])
+    terms = sample_columns(t_fine, reg["terms"], donors.ravel()).astype(np.float32)
+    order = swap_orders(trial, options["n_perm"], kinds=options["kinds"], seed=seed)
+    return terms.reshape(donors.shape[0], t.size, *reg["terms"].shape[1:]), order
 
 
 def _perms(trial, options, *, seed):
@@ -185,6 +229,8 @@ def run_tuning(settings, store, compute):
         vig = tab["vigor"].to_numpy(np.float64) if "vigor" in tab else np.zeros(len(tab))
         bouts = (_scope_times(store, tab, "onset_rig_s"),
                  tab["angle_rad"].to_numpy(np.float64), vig)
+    # the null's anchors: each trial's first split, its span on the rig's clock and its kind
+    anchors = trial_anchors(t_fine, held[:, -1].astype(np.int64), held[:, :-1], split_s)
     reg = tuning_regressors(t_fine, held[:, :-1], held[:, -1].astype(np.int64), split_s,
                             rise_s=im.rise_s, decay_s=im.decay_s, n_harmonics=ts.n_harmonics,
                             bouts=bouts, leads_s=ts.nuisance_leads_s)
@@ -192,6 +238,7 @@ def run_tuning(settings, store, compute):
                "null": ts.null, "min_shift": max(1, round(ts.min_shift_s * im.volume_rate_hz)),
                "post_s": ts.post_window_s, "trial_intercepts": ts.trial_intercepts,
                "attribution": ts.attribution,
+               "anchors": anchors[0], "kinds": anchors[1],
                "guard_s": ts.split_guard_s,
                "min_epoch_trials": ts.min_epoch_trials,
                "leads_s": ts.nuisance_leads_s,
@@ -308,7 +355,8 @@ def _write_tuning(store, settings, cells, parts, epochs, n_targets, between="sep
     # cells whose bearing terms are significant but whose target cannot be named, per epoch
     n_ambiguous = {e: int(ambiguous[:, j].any(axis=0).sum()) for j, e in enumerate(epochs)}
     store.set_info({"fractions": summary, "switches": switches, "ambiguous": n_ambiguous,
-                    "between_epoch": between})
+                    "between_epoch": between, "null": ts.null,
+                    "n_permutations": ts.n_permutations})
     _paint(store, cells, grid, tuned, names, epochs)
 
 

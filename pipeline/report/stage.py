@@ -331,6 +331,13 @@ def _decoding(ctx: _Ctx) -> str:
     return "\n".join(out)
 
 
+_NULL_NAMES = {"aligned": "each trial's bearing terms swapped with another trial's showing "
+                          "the same targets, aligned at the first split",
+               "trial": "whole trials re-concatenated in a random order (anti-conservative "
+                        "for sparse activity when trials differ in length)",
+               "circular": "circular shifts of the bearing terms (drift can fool it)"}
+
+
 def _tuning(ctx: _Ctx) -> str:
     from pipeline.analysis.stats import binomial_interval
 
@@ -363,7 +370,13 @@ def _tuning(ctx: _Ctx) -> str:
             notes = (" Not shown: cells tuned to bearing whose target could not be named (the "
                      "target explaining most over the session and within trials differ): "
                      + ", ".join(f"{n} {e}" for e, n in counts.items()) + ".")
-    between = s.record("tuning").get("info", {}).get("between_epoch")
+    info = s.record("tuning").get("info", {})
+    between = info.get("between_epoch")
+    null = _NULL_NAMES.get(info.get("null", ""), "")
+    if null:
+        notes += (f" Null: {null}, {info.get('n_permutations', '?')} permutations; it assumes "
+                  "trials are exchangeable, which slow drift across the session or learning "
+                  "can break.")
     if between == "merged into post":
         notes += (" Epochs are cut at each trial's first split: too few trials had two splits "
                   "to test the stretch between them on its own, so it is part of 'post'.")
