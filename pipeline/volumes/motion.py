@@ -164,7 +164,7 @@ def _window(v: np.ndarray, crop: tuple[tuple[int, int], ...], alpha: float,
 
 
 def _cross_power(binned: np.ndarray, prepared: PreparedReference,
-                 window_shift: np.ndarray | None) -> tuple[np.ndarray, float]:
+                 window_shift: np.ndarray | None) -> np.ndarray:
     """Cross-power spectrum of a binned volume and the reference; the moving volume's window
     is displaced by ``window_shift`` (conditioned voxels) so that it frames the same content."""
     F = sfft.rfftn(_window(binned, prepared.crop, prepared.tukey_alpha, window_shift),
@@ -172,13 +172,18 @@ def _cross_power(binned: np.ndarray, prepared: PreparedReference,
     if prepared.normalization == "phase":
         F = F / (np.abs(F) + np.finfo(np.float32).tiny)
     if F.dtype == np.complex64:
-        R = np.multiply(F, prepared.spectrum, out=F)  # in place: no third spectrum
-    else:
-        R = (F * prepared.spectrum).astype(np.complex64, copy=False)
+        return np.multiply(F, prepared.spectrum, out=F)  # in place: no third spectrum
+    return (F * prepared.spectrum).astype(np.complex64, copy=False)
+
+
+def _bound(R: np.ndarray, prepared: PreparedReference) -> float:
+    """Correlation of perfectly aligned phases for the cross-power spectrum ``R`` (the
+    quality's denominator); only the final pass's is needed."""
     if prepared.normalization == "phase":
-        return R, prepared.bound
+        return prepared.bound
     shape = prepared.shape
-    return R, float((np.abs(R) * half_weights(shape)).sum() / np.prod(shape))
+    per_x = np.abs(R).reshape(-1, R.shape[-1]).sum(axis=0, dtype=np.float64)
+    return float(per_x @ half_weights(shape) / np.prod(shape))
 
 
 def _coarse_peak(R: np.ndarray, prepared: PreparedReference) -> tuple[np.ndarray, np.ndarray]:
@@ -383,22 +388,22 @@ def register_volume(volume: np.ndarray, prepared: PreparedReference, *,
         # the first estimate only places the window: on planes binned further (4x fewer
         # voxels per extra factor 2), then the one pass at bin_yx with the window placed
         k = first.bin_yx // b
-        R1, _ = _cross_power(_bin(binned, k), first, None)
+        R1 = _cross_power(_bin(binned, k), first, None)
         c1, f1 = _coarse_peak(R1, first)
         place = (c1 + f1) * np.array([1.0, k, k])
-        R, bound = _cross_power(binned, prepared,
-                                place if np.abs(place).max() > 0.1 else None)
+        R = _cross_power(binned, prepared,
+                         place if np.abs(place).max() > 0.1 else None)
         # the peak lies near the window's placement: search whole voxels around it by
         # matrix-multiply DFTs, the full inverse FFT only if the peak is not inside that grid
         near = local_peak(R, shape, place, prepared.allowed)
         coarse, frac = near if near is not None else _coarse_peak(R, prepared)
     else:
-        R, bound = _cross_power(binned, prepared, None)
+        R = _cross_power(binned, prepared, None)
         coarse, frac = _coarse_peak(R, prepared)
         if recentre and prepared.tukey_alpha > 0 and np.abs(coarse + frac).max() > 0.1:
             # the window is fixed in the frame and pulls the peak towards zero; a window that
             # follows the first estimate frames the same content in both volumes
-            R, bound = _cross_power(binned, prepared, coarse + frac)
+            R = _cross_power(binned, prepared, coarse + frac)
             coarse, frac = _coarse_peak(R, prepared)
     up = np.array([upsample, upsample * b, upsample * b], dtype=float)
     # the 3-point parabola is within ~0.1 voxel of the peak, so a +-0.3 voxel grid (2.5x
@@ -407,6 +412,7 @@ def register_volume(volume: np.ndarray, prepared: PreparedReference, *,
     fine, peak, edge = upsampled_peak(R, shape, coarse + frac, up, 0.3)
     if edge:
         fine, peak, _ = upsampled_peak(R, shape, coarse, up, 0.75)
+    bound = _bound(R, prepared)
     quality = float(np.clip(peak / bound, 0.0, 1.0)) if bound > 0 else 0.0
     return fine * np.array([1.0, b, b]), quality
 
