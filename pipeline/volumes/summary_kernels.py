@@ -212,15 +212,16 @@ def _plane_sums(cur, up, dn, has_up, has_dn, mode, y0, y1, r0, ny, zs, ybox, mro
 
 
 @numba.njit(cache=True, nogil=True)
-def accumulate(vols, shift_i, shift_f, offset, exact, mode, s_x, s_xx, s_xn,
-               s_nn):  # pragma: no cover - compiled
+def accumulate(vols, shift_i, shift_f, offset, exact, mode, s_x, s_xx, s_xn, s_nn,
+               band=0):  # pragma: no cover - compiled
     """Add volumes ``vols[b]``, each registered by its shift and offset, to the running sums.
 
     Band of rows by band of rows, then plane by plane: for each volume the band's rows (and
     one more row each side) of the registered plane ahead are built into its ring of three
     float64 planes, and the neighbour means and sums of the current plane's band are formed
     row by row (each voxel receives the volumes in order). ``mode``: 0 = 26 neighbours, 1 =
-    6, 2 = 8 in-plane; ``exact``: no shift (the volumes are read as they are).
+    6, 2 = 8 in-plane; ``exact``: no shift (the volumes are read as they are); ``band``: rows
+    per band (0: chosen from the plane's width, see below).
 
     The bands keep the ring in the L2 cache: whole planes (three float64 planes of 256 x 256,
     1.5 MB, next to the 1 MB of the four float32 sums' plane) went to the next cache level.
@@ -243,7 +244,9 @@ def accumulate(vols, shift_i, shift_f, offset, exact, mode, s_x, s_xx, s_xn,
         taps[i, 5, :nx] = hi
     # rows per band: the band's ring rows of every volume (3 planes, float64) and the band of
     # the four sums stay within ~1 MB (the L2 cache of the machine measured has 2 MB)
-    band = max(4, min(ny, (1 << 20) // (nx * (24 * nb + 16)) - 2))
+    if band <= 0:
+        band = max(4, min(ny, (1 << 20) // (nx * (24 * nb + 16)) - 2))
+    band = min(band, ny)
     ring = np.empty((nb, 3, min(ny, band + 2), nx), np.float64)
     row = np.empty(nx, np.float32)
     lerp = np.empty(nx, np.float32)
