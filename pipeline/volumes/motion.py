@@ -409,7 +409,7 @@ def register_volume(volume: np.ndarray, prepared: PreparedReference, *,
     # the 3-point parabola is within ~0.1 voxel of the peak, so a +-0.3 voxel grid (2.5x
     # fewer points per axis than the +-0.75 of the original method) usually suffices; the
     # full grid is the fallback when the maximum lands on the small grid's border
-    fine, peak, edge = upsampled_peak(R, shape, coarse + frac, up, 0.3)
+    fine, peak, edge = upsampled_peak(R, shape, coarse + frac, up, 0.3, stride=4)
     if edge:
         fine, peak, _ = upsampled_peak(R, shape, coarse, up, 0.75)
     bound = _bound(R, prepared)
