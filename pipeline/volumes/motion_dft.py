@@ -74,11 +74,13 @@ def dft_grid(R: np.ndarray, shape: tuple[int, int, int], grids: list[np.ndarray]
             for g, f in zip(grids, freqs, strict=True)]
     kx = np.ascontiguousarray((kern[2] * half_weights(shape)[None, :]).T.astype(np.complex64))
     nz, ny, nxh = R.shape
-    t = (R.reshape(nz * ny, nxh) @ kx).reshape(nz, ny, -1)    # (nz, ny, ux): one BLAS call
-    t = kern[1] @ t                                           # (nz, uy, ux)
-    _, uy, ux = t.shape
-    c = (kern[0] @ t.reshape(nz, uy * ux)).real               # (uz, uy * ux)
-    return c.reshape(len(grids[0]), uy, ux) / float(np.prod(shape))
+    uz, uy = len(grids[0]), len(grids[1])
+    # z first: a short, wide product suits BLAS better than a tall, thin one (0.16 against
+    # 0.21 ms for 5 points of a 30 x 128 x 65 spectrum, measured, one core)
+    t = (kern[0] @ R.reshape(nz, ny * nxh)).reshape(uz, ny, nxh)   # (uz, ny, nxh)
+    t = kern[1] @ t                                                  # (uz, uy, nxh)
+    c = (t.reshape(uz * uy, nxh) @ kx).real                          # (uz * uy, ux)
+    return c.reshape(uz, uy, -1) / float(np.prod(shape))
 
 
 def upsampled_peak(R: np.ndarray, shape: tuple[int, int, int], centre: np.ndarray,
