@@ -351,3 +351,16 @@ def test_grid_searches_match_the_full_inverse_fft(rng: np.random.Generator) -> N
         coarse_fine = upsampled_peak(R, prep.shape, near[0] + near[1], up, 0.3, stride=4)
         np.testing.assert_array_equal(coarse_fine[0], whole[0])
         np.testing.assert_allclose(coarse_fine[0], planted, atol=0.05)
+
+
+def test_compiled_window_equals_the_numpy_expression(rng: np.random.Generator) -> None:
+    from pipeline.volumes.motion import _tukey
+    from pipeline.volumes.motion_dft import apply_window
+
+    v = rng.uniform(0, 3000, (7, 20, 18)).astype(np.float32)
+    for view in (v, v[1:6, 2:19, 3:15]):  # contiguous and a strided crop
+        w = [_tukey(n, 0.25, s) for n, s in zip(view.shape, (0.3, 1.7, -2.2), strict=True)]
+        # reference: the NumPy broadcast expression, float32 throughout
+        expected = ((view - view.mean(dtype=np.float32)) * w[0][:, None, None]
+                    * w[1][None, :, None] * w[2][None, None, :])
+        np.testing.assert_array_equal(apply_window(view, *w), expected)

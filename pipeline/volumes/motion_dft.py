@@ -2,12 +2,12 @@
 correlation evaluated by matrix-multiply DFTs on small grids (sub-voxel and local peaks).
 
 Speed notes (CPU per 30 x 256 x 256 volume, 2 x 2 binning, one core of the shared 2-core
-machine, best of 7, measured): the window of the 30 x 128 x 128 binned volume took 0.84 ms as
-NumPy expressions (a centred copy and three broadcast products, each a new array), 0.3 ms in
+machine, best of 7-15, measured): the window of the 30 x 128 x 128 binned volume took 0.74 ms as
+NumPy expressions (a centred copy and three broadcast products, each a new array), 0.22 ms in
 :func:`apply_window` (bit-identical). When the first pass has placed the moving volume's
 window, the correlation peak lies within a voxel or two of that estimate, so
 :func:`local_peak` evaluates the correlation on a 5 x 5 x 5 grid of whole voxels around it by
-matrix-multiply DFTs (0.25 ms) instead of the full inverse FFT (1.5 ms); a peak on the grid's
+matrix-multiply DFTs (0.32 ms) instead of the full inverse FFT (1.5 ms); a peak on the grid's
 border or outside the allowed shifts falls back to the full inverse FFT.
 """
 
