@@ -326,3 +326,41 @@ def test_registered_sum_equals_the_sum_of_registered_copies(rng: np.random.Gener
     np.testing.assert_allclose(shift_volume(vols[0], shifts[0]),
                                ndi.shift(vols[0].astype(np.float32), -shifts[0], order=1,
                                          mode="nearest", prefilter=False), rtol=1e-5, atol=0.02)
+
+
+def test_grid_searches_match_the_full_inverse_fft(rng: np.random.Generator) -> None:
+    from pipeline.volumes.motion import _cross_power
+    from pipeline.volumes.motion_dft import local_peak, upsampled_peak
+
+    ref = _blobs(rng)
+    prep = prepare_reference(ref, tukey_alpha=0.0, highpass_sigma_vox=(0, 4, 4))
+    for _ in range(3):
+        planted = rng.uniform(-3, 3, 3)
+        R = _cross_power(_fourier_shifted(ref, planted).astype(np.float32), prep, None)
+        # reference: scipy.fft.irfftn of the cross-power spectrum, searched whole
+        c = sfft.irfftn(R, s=prep.shape)
+        peak = np.array(np.unravel_index(int(np.argmax(c)), c.shape))
+        peak = np.where(peak > np.array(prep.shape) // 2, peak - np.array(prep.shape), peak)
+        near = local_peak(R, prep.shape, planted + rng.uniform(-0.5, 0.5, 3), prep.allowed)
+        assert near is not None
+        np.testing.assert_array_equal(near[0], peak)
+        # a centre three voxels off puts the peak on the 5 x 5 x 5 grid's border: no answer
+        assert local_peak(R, prep.shape, peak + np.array([0.0, 3.0, 0.0]), prep.allowed) is None
+        up = np.array([20.0, 20.0, 20.0])
+        whole = upsampled_peak(R, prep.shape, near[0] + near[1], up, 0.3)
+        coarse_fine = upsampled_peak(R, prep.shape, near[0] + near[1], up, 0.3, stride=4)
+        np.testing.assert_array_equal(coarse_fine[0], whole[0])
+        np.testing.assert_allclose(coarse_fine[0], planted, atol=0.05)
+
+
+def test_compiled_window_equals_the_numpy_expression(rng: np.random.Generator) -> None:
+    from pipeline.volumes.motion import _tukey
+    from pipeline.volumes.motion_dft import apply_window
+
+    v = rng.uniform(0, 3000, (7, 20, 18)).astype(np.float32)
+    for view in (v, v[1:6, 2:19, 3:15]):  # contiguous and a strided crop
+        w = [_tukey(n, 0.25, s) for n, s in zip(view.shape, (0.3, 1.7, -2.2), strict=True)]
+        # reference: the NumPy broadcast expression, float32 throughout
+        expected = ((view - view.mean(dtype=np.float32)) * w[0][:, None, None]
+                    * w[1][None, :, None] * w[2][None, None, :])
+        np.testing.assert_array_equal(apply_window(view, *w), expected)

@@ -216,3 +216,35 @@ def test_float32_blocks_within_the_summation_bound(rng: np.random.Generator) -> 
         block.update(stack[-1])
     with pytest.raises(ConfigError, match=r"dtype = 'int8': expected float32 or float64"):
         SummaryAccumulator.empty(SHAPE, dtype="int8")
+
+
+@pytest.mark.parametrize("band", [1, 2, 3, 5, 0])
+@pytest.mark.parametrize("neighbourhood", [26, 6, 8])
+def test_row_bands_change_no_bit(rng: np.random.Generator, band: int, neighbourhood: int
+                                 ) -> None:
+    """The kernel forms the sums band of rows by band of rows (cache blocking; one band for
+    volumes this small unless ``band`` is given): any band size gives the same bits."""
+    from pipeline.volumes.motion import shift_volume
+    from pipeline.volumes.summary import _MODE
+    from pipeline.volumes.summary_kernels import accumulate
+
+    shape = (4, 11, 9)
+    vols = rng.integers(100, 4000, (3, *shape)).astype(np.uint16)
+    shifts = np.array([(0.3, -1.7, 2.25), (-0.5, 3.0, 0.0), (1.2, -0.01, -7.9)])
+    offset = vols[0].astype(np.float32)
+    # reference: a registered copy (shift_volume, itself checked against
+    # scipy.ndimage.shift(order=1, mode="nearest") in test_volumes_motion.py) added whole
+    copied = SummaryAccumulator.empty(shape, neighbourhood=neighbourhood, offset=offset)
+    for v, s in zip(vols, shifts, strict=True):
+        copied.update(shift_volume(v, s))
+    k = np.floor(shifts).astype(np.int64)
+    f = (shifts - k).astype(np.float32)
+    one_by_one = [np.zeros(shape) for _ in range(4)]
+    for i in range(3):
+        accumulate(vols[i:i + 1], k[i:i + 1], f[i:i + 1], offset, False, _MODE[neighbourhood],
+                   *one_by_one, band)
+    together = [np.zeros(shape) for _ in range(4)]
+    accumulate(vols, k, f, offset, False, _MODE[neighbourhood], *together, band)
+    for i, name in enumerate(("sum_x", "sum_xx", "sum_xn", "sum_nn")):
+        np.testing.assert_array_equal(one_by_one[i], getattr(copied, name))
+        np.testing.assert_array_equal(together[i], getattr(copied, name))

@@ -20,6 +20,7 @@ import scipy.fft as sfft
 import scipy.ndimage as ndi
 
 from pipeline.errors import ConfigError
+from pipeline.volumes.motion_dft import apply_window, half_weights, local_peak, upsampled_peak
 
 __all__ = [
     "PreparedReference",
@@ -157,25 +158,32 @@ def _tukey(n: int, alpha: float, shift: float = 0.0) -> np.ndarray:
 def _window(v: np.ndarray, crop: tuple[tuple[int, int], ...], alpha: float,
             shift: np.ndarray | None = None) -> np.ndarray:
     v = v[tuple(slice(a, b) for a, b in crop)]
-    v = v - v.mean(dtype=np.float32)
     sh = np.zeros(3) if shift is None else shift
     w = [_tukey(n, alpha, float(d)) for n, d in zip(v.shape, sh, strict=True)]
-    return v * w[0][:, None, None] * w[1][None, :, None] * w[2][None, None, :]
+    return apply_window(v, w[0], w[1], w[2])
 
 
 def _cross_power(binned: np.ndarray, prepared: PreparedReference,
-                 window_shift: np.ndarray | None) -> tuple[np.ndarray, float]:
+                 window_shift: np.ndarray | None) -> np.ndarray:
     """Cross-power spectrum of a binned volume and the reference; the moving volume's window
     is displaced by ``window_shift`` (conditioned voxels) so that it frames the same content."""
     F = sfft.rfftn(_window(binned, prepared.crop, prepared.tukey_alpha, window_shift),
                    workers=1)
     if prepared.normalization == "phase":
         F = F / (np.abs(F) + np.finfo(np.float32).tiny)
-    R = (F * prepared.spectrum).astype(np.complex64, copy=False)
+    if F.dtype == np.complex64:
+        return np.multiply(F, prepared.spectrum, out=F)  # in place: no third spectrum
+    return (F * prepared.spectrum).astype(np.complex64, copy=False)
+
+
+def _bound(R: np.ndarray, prepared: PreparedReference) -> float:
+    """Correlation of perfectly aligned phases for the cross-power spectrum ``R`` (the
+    quality's denominator); only the final pass's is needed."""
     if prepared.normalization == "phase":
-        return R, prepared.bound
+        return prepared.bound
     shape = prepared.shape
-    return R, float((np.abs(R) * _half_weights(shape)).sum() / np.prod(shape))
+    per_x = np.abs(R).reshape(-1, R.shape[-1]).sum(axis=0, dtype=np.float64)
+    return float(per_x @ half_weights(shape) / np.prod(shape))
 
 
 def _coarse_peak(R: np.ndarray, prepared: PreparedReference) -> tuple[np.ndarray, np.ndarray]:
@@ -198,16 +206,6 @@ def _coarse_peak(R: np.ndarray, prepared: PreparedReference) -> tuple[np.ndarray
         if den < 0:
             frac[a] = float(np.clip(0.5 * (cm - cp) / den, -0.5, 0.5))
     return coarse, frac
-
-
-def _half_weights(shape: tuple[int, int, int]) -> np.ndarray:
-    """Multiplicity of each rfft bin along x in the full spectrum (1 or 2)."""
-    nx = shape[2]
-    w = np.full(nx // 2 + 1, 2.0)
-    w[0] = 1.0
-    if nx % 2 == 0:
-        w[-1] = 1.0
-    return w
 
 
 def prepare_reference(
@@ -310,7 +308,7 @@ def prepare_reference(
         spec = spec / (np.abs(spec) + np.finfo(np.float32).tiny)
     spectrum = (np.conj(spec) * weight).astype(np.complex64)
     n_total = float(np.prod(shape))
-    bound = float((weight * _half_weights(shape)).sum() / n_total)
+    bound = float((weight * half_weights(shape)).sum() / n_total)
     if max_shift_vox is None:
         ms = tuple(float(n) / 2 for n in shape)
     else:
@@ -333,36 +331,6 @@ def prepare_reference(
 
 def _signed(idx: np.ndarray, n: int) -> np.ndarray:
     return np.where(idx > n // 2, idx - n, idx)
-
-
-def _upsampled_peak(R: np.ndarray, shape: tuple[int, int, int], centre: np.ndarray,
-                    up: np.ndarray, half_width: float = 0.75
-                    ) -> tuple[np.ndarray, float, bool]:
-    """Refine the correlation peak by a matrix-multiply DFT on a small grid around ``centre``.
-
-    Returns the refined position, the correlation there, and whether the maximum lies on the
-    grid's border (the true peak may lie outside it).
-    """
-    freqs = (sfft.fftfreq(shape[0]), sfft.fftfreq(shape[1]), sfft.rfftfreq(shape[2]))
-    grids = []
-    for a in range(3):
-        if shape[a] == 1:
-            grids.append(np.array([0.0]))
-            continue
-        h = int(np.ceil(half_width * up[a]))
-        grids.append(centre[a] + np.arange(-h, h + 1) / up[a])
-    kern = [np.exp(2j * np.pi * g[:, None] * f[None, :]).astype(np.complex64)
-            for g, f in zip(grids, freqs, strict=True)]
-    kx = np.ascontiguousarray((kern[2] * _half_weights(shape)[None, :]).T.astype(np.complex64))
-    nz, ny, nxh = R.shape
-    t = (R.reshape(nz * ny, nxh) @ kx).reshape(nz, ny, -1)    # (nz, ny, ux): one BLAS call
-    t = kern[1] @ t                                           # (nz, uy, ux)
-    _, uy, ux = t.shape
-    c = (kern[0] @ t.reshape(nz, uy * ux)).real               # (uz, uy * ux)
-    c = c.reshape(len(grids[0]), uy, ux) / float(np.prod(shape))
-    i = np.unravel_index(int(np.argmax(c)), c.shape)
-    edge = any(len(g) > 1 and i[a] in (0, len(g) - 1) for a, g in enumerate(grids))
-    return np.array([grids[a][i[a]] for a in range(3)]), float(c[i]), edge
 
 
 def register_volume(volume: np.ndarray, prepared: PreparedReference, *,
@@ -420,27 +388,31 @@ def register_volume(volume: np.ndarray, prepared: PreparedReference, *,
         # the first estimate only places the window: on planes binned further (4x fewer
         # voxels per extra factor 2), then the one pass at bin_yx with the window placed
         k = first.bin_yx // b
-        R1, _ = _cross_power(_bin(binned, k), first, None)
+        R1 = _cross_power(_bin(binned, k), first, None)
         c1, f1 = _coarse_peak(R1, first)
         place = (c1 + f1) * np.array([1.0, k, k])
-        R, bound = _cross_power(binned, prepared,
-                                place if np.abs(place).max() > 0.1 else None)
-        coarse, frac = _coarse_peak(R, prepared)
+        R = _cross_power(binned, prepared,
+                         place if np.abs(place).max() > 0.1 else None)
+        # the peak lies near the window's placement: search whole voxels around it by
+        # matrix-multiply DFTs, the full inverse FFT only if the peak is not inside that grid
+        near = local_peak(R, shape, place, prepared.allowed)
+        coarse, frac = near if near is not None else _coarse_peak(R, prepared)
     else:
-        R, bound = _cross_power(binned, prepared, None)
+        R = _cross_power(binned, prepared, None)
         coarse, frac = _coarse_peak(R, prepared)
         if recentre and prepared.tukey_alpha > 0 and np.abs(coarse + frac).max() > 0.1:
             # the window is fixed in the frame and pulls the peak towards zero; a window that
             # follows the first estimate frames the same content in both volumes
-            R, bound = _cross_power(binned, prepared, coarse + frac)
+            R = _cross_power(binned, prepared, coarse + frac)
             coarse, frac = _coarse_peak(R, prepared)
     up = np.array([upsample, upsample * b, upsample * b], dtype=float)
     # the 3-point parabola is within ~0.1 voxel of the peak, so a +-0.3 voxel grid (2.5x
     # fewer points per axis than the +-0.75 of the original method) usually suffices; the
     # full grid is the fallback when the maximum lands on the small grid's border
-    fine, peak, edge = _upsampled_peak(R, shape, coarse + frac, up, 0.3)
+    fine, peak, edge = upsampled_peak(R, shape, coarse + frac, up, 0.3, stride=4)
     if edge:
-        fine, peak, _ = _upsampled_peak(R, shape, coarse, up, 0.75)
+        fine, peak, _ = upsampled_peak(R, shape, coarse, up, 0.75)
+    bound = _bound(R, prepared)
     quality = float(np.clip(peak / bound, 0.0, 1.0)) if bound > 0 else 0.0
     return fine * np.array([1.0, b, b]), quality
 
