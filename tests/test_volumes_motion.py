@@ -251,6 +251,47 @@ def test_motion_stage_matches_kernels(tmp_path: Path, rng: np.random.Generator) 
     assert store.read_array("motion/flags").shape == (12, 4)
     np.testing.assert_allclose(store.read_array("motion/shifts_um")[...],
                                shifts * np.array([5.0, 1.0, 1.0]))
+    # the stored reference carries the hash of its bytes (the workers' cache key)
+    from pipeline.volumes.motion_stage import content_hash
+    assert store.read_array("motion/reference").attrs["content_hash"] == content_hash(reference)
+
+
+def test_reference_cache_is_keyed_on_content(tmp_path: Path, rng: np.random.Generator) -> None:
+    import zarr
+
+    from pipeline.volumes.motion_stage import clear_reference_cache, content_hash, load_reference
+
+    ref = _blobs(rng, (6, 32, 32), n=40).astype(np.float32)
+    path = str(tmp_path / "ref.zarr")
+    arr = zarr.create_array(path, shape=ref.shape, dtype="float32")
+    arr[...] = ref
+    opts = {"bin_yx": 1}
+    # no hash: read and conditioned at every call
+    a, pa = load_reference(path, opts)
+    b, pb = load_reference(path, opts)
+    assert a is not b and pb is not pa
+    arr.attrs["content_hash"] = content_hash(ref)
+    c, pc = load_reference(path, opts)
+    d, pd_ = load_reference(path, opts)
+    assert c is d and pc is pd_                      # kept: conditioned once
+    assert not c.flags.writeable                     # shared between tasks, so read-only
+    with pytest.raises(ValueError):
+        c[0, 0, 0] = 1.0
+    # same spectrum as a fresh conditioning (the cache changes nothing)
+    np.testing.assert_array_equal(pc.spectrum, prepare_reference(ref, **opts).spectrum)
+    # a new reference at the same path has a new hash, so it is read again
+    ref2 = ref + 1.0
+    arr[...] = ref2
+    arr.attrs["content_hash"] = content_hash(ref2)
+    e, _ = load_reference(path, opts)
+    np.testing.assert_array_equal(e, ref2)
+    # other options, other conditioning
+    _, pf = load_reference(path, {"bin_yx": 2})
+    assert pf is not pc and pf.bin_yx == 2
+    assert content_hash(ref) != content_hash(ref2) != content_hash(ref2.astype(np.float64))
+    clear_reference_cache()
+    g, _ = load_reference(path, {"bin_yx": 2})
+    assert g is not e
 
 
 def test_motion_stage_reference_start_beyond_session(tmp_path: Path) -> None:

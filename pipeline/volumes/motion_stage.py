@@ -16,7 +16,9 @@ Outputs under ``session.zarr/motion``: ``shifts_vox`` and ``shifts_um`` (t, 3), 
 
 from __future__ import annotations
 
+import hashlib
 import shutil
+import threading
 from functools import partial
 from pathlib import Path
 from typing import Any
@@ -77,6 +79,52 @@ def _get(arr: zarr.Array, key: Any = Ellipsis) -> np.ndarray:
     return np.asarray(arr[key])
 
 
+# One prepared reference per process, keyed on the array's path, the hash of its content
+# (``motion/reference``'s ``content_hash`` attribute) and the estimation options: every
+# registration task of a worker used to read the reference and condition it again (~30 ms per
+# task for a 30 x 256 x 256 reference; seconds for a full-size one).
+_PREPARED: dict[tuple, tuple[np.ndarray, Any]] = {}
+_PREPARED_LOCK = threading.Lock()
+
+
+def content_hash(reference: np.ndarray) -> str:
+    """BLAKE2b digest of an array's bytes, shape and dtype (the reference cache's key)."""
+    h = hashlib.blake2b(digest_size=16)
+    h.update(f"{reference.shape}{reference.dtype.str}".encode())
+    for plane in np.atleast_2d(reference):     # plane by plane: no full-size copy
+        h.update(np.ascontiguousarray(plane).tobytes())
+    return h.hexdigest()
+
+
+def load_reference(reference_path: str, options: dict[str, Any] | None
+                   ) -> tuple[np.ndarray, Any]:
+    """The reference at ``reference_path`` and its :func:`prepare_reference` conditioning
+    (None without ``options``), both read-only and kept per process when the array carries a
+    ``content_hash`` attribute (written by the motion stage) so a worker conditions it once."""
+    arr = zarr.open_array(reference_path, mode="r")
+    token = arr.attrs.get("content_hash")
+    key = (reference_path, token, None if options is None else repr(sorted(options.items())))
+    if token is not None:
+        with _PREPARED_LOCK:
+            hit = _PREPARED.get(key)
+        if hit is not None:
+            return hit
+    reference = _get(arr)
+    reference.setflags(write=False)
+    prep = None if options is None else prepare_reference(reference, **options)
+    if token is not None:
+        with _PREPARED_LOCK:
+            _PREPARED.clear()
+            _PREPARED[key] = (reference, prep)
+    return reference, prep
+
+
+def clear_reference_cache() -> None:
+    """Drop the per-process prepared reference (the motion stage calls it when done)."""
+    with _PREPARED_LOCK:
+        _PREPARED.clear()
+
+
 def _block_sum(group: tuple[int, int], volumes_path: str) -> np.ndarray:
     """Task: float64 sum of volumes ``start..stop-1``."""
     arr = zarr.open_array(volumes_path, mode="r")
@@ -90,7 +138,7 @@ def _block_registered_sum(group: tuple[int, int], volumes_path: str, reference_p
                           options: dict[str, Any], upsample: int) -> np.ndarray:
     """Task: sum of volumes ``start..stop-1`` registered to the reference at ``reference_path``."""
     arr = zarr.open_array(volumes_path, mode="r")
-    prep = prepare_reference(_get(zarr.open_array(reference_path, mode="r")), **options)
+    _, prep = load_reference(reference_path, options)
     total, _s, _q = registered_sum((_get(arr, t) for t in range(*group)), prep,
                                    upsample=upsample)
     return total
@@ -109,8 +157,7 @@ def _register_group(group: tuple[int, int], volumes_path: str, reference_path: s
     their runs into float64 sums in volume order (see the numerical note of
     :mod:`pipeline.volumes.summary`)."""
     arr = zarr.open_array(volumes_path, mode="r")
-    reference = _get(zarr.open_array(reference_path, mode="r"))
-    prep = prepare_reference(reference, **options) if enabled else None
+    reference, prep = load_reference(reference_path, options if enabled else None)
 
     def block() -> SummaryAccumulator:
         return SummaryAccumulator.empty(reference.shape, neighbourhood=neighbourhood,
@@ -190,21 +237,23 @@ def run_motion(settings: Settings, store: StageStore, compute: Compute) -> None:
     n_ref = ref_stop - m.reference_start
     sums = compute.map(_block_sum, ref_groups, vpath, desc="motion: reference mean")
     reference = (np.sum(sums, axis=0) / n_ref).astype(np.float32)
-    store.write_array("motion/reference", reference, attrs={"unit": "camera counts"},
-                      dimension_names=("z", "y", "x"))
+    store.write_array("motion/reference", reference, dimension_names=("z", "y", "x"),
+                      attrs={"unit": "camera counts", "content_hash": content_hash(reference)})
     ref_path = store.staged_array_path("motion/reference")
     if m.enabled:
         sums = compute.map(_block_registered_sum, ref_groups, vpath, ref_path, opts, m.upsample,
                            desc="motion: reference refine")
         reference = (np.sum(sums, axis=0) / n_ref).astype(np.float32)
-        store.write_array("motion/reference", reference, attrs={"unit": "camera counts"},
-                          dimension_names=("z", "y", "x"))
+        store.write_array("motion/reference", reference, dimension_names=("z", "y", "x"),
+                          attrs={"unit": "camera counts",
+                                 "content_hash": content_hash(reference)})
     groups = volume_groups(0, T, block=m.block_volumes, n_tasks=T)
     spill = spill_directory(compute, store.staging_path("motion-sums"))
     shift_blocks, quality_blocks, acc = compute.reduce(
         _register_group, groups, vpath, ref_path, opts, m.upsample, m.neighbourhood, m.enabled,
         spill, merge=partial(_merge_groups, offset=reference, neighbourhood=m.neighbourhood),
         desc="motion: register")
+    clear_reference_cache()
     acc = _resolve(acc, reference, m.neighbourhood)
     if spill is not None:
         shutil.rmtree(spill, ignore_errors=True)

@@ -100,14 +100,14 @@ def _path_task(group: tuple[int, int], vpath: str, ref_path: str, weights_path: 
     """One block of our path: register, accumulate summary sums, sample the cells (the sums
     are written under ``spill_dir`` and returned as a handle when given, as the stage does
     on process workers)."""
-    from pipeline.volumes.motion import prepare_reference, register_volume
+    from pipeline.volumes.motion import register_volume
+    from pipeline.volumes.motion_stage import load_reference
     from pipeline.volumes.sampling import sample_volume
     from pipeline.volumes.summary import SummaryAccumulator
     from pipeline.volumes.traces import _cached_weights
 
     arr = zarr.open_array(vpath, mode="r")
-    reference = np.asarray(zarr.open_array(ref_path, mode="r")[...])
-    prep = prepare_reference(reference, **options)
+    reference, prep = load_reference(ref_path, options)   # conditioned once per process
     w = _cached_weights(weights_path)
     acc = SummaryAccumulator.empty(reference.shape, offset=reference, dtype="float32")
     n = group[1] - group[0]
@@ -155,7 +155,12 @@ def our_path(vpath: str, labels: np.ndarray, work: Path, *, scheduler: str = "th
 
     from pipeline.compute import Compute
     from pipeline.config import ComputeSettings
-    from pipeline.volumes.motion_stage import _resolve, spill_directory, volume_groups
+    from pipeline.volumes.motion_stage import (
+        _resolve,
+        content_hash,
+        spill_directory,
+        volume_groups,
+    )
     from pipeline.volumes.sampling import build_weights
     from pipeline.volumes.traces import _save_weights
 
@@ -163,7 +168,9 @@ def our_path(vpath: str, labels: np.ndarray, work: Path, *, scheduler: str = "th
     n = arr.shape[0]
     ref_path = str(work / "reference.zarr")
     ref = np.asarray(arr[0], dtype=np.float32)
-    zarr.create_array(ref_path, shape=ref.shape, dtype="float32", overwrite=True)[...] = ref
+    ref_arr = zarr.create_array(ref_path, shape=ref.shape, dtype="float32", overwrite=True)
+    ref_arr[...] = ref
+    ref_arr.attrs["content_hash"] = content_hash(ref)     # as the motion stage writes it
     weights_path = str(work / "weights")
     _save_weights(weights_path, build_weights(labels, voxel_size_um=VOXEL_UM))
     # the motion stage's defaults: estimation on 2 x 2 binned planes, high-pass in y and x
@@ -206,6 +213,8 @@ def stage_passes(vpath: str, labels: np.ndarray, work: Path, *, reference_count:
         _block_sum,
         _merge_groups,
         _register_group,
+        clear_reference_cache,
+        content_hash,
         volume_groups,
     )
     from pipeline.volumes.sampling import build_weights
@@ -232,15 +241,18 @@ def stage_passes(vpath: str, labels: np.ndarray, work: Path, *, reference_count:
     try:
         c0 = time.process_time()
         t0 = time.perf_counter()
-        sums = compute.map(_block_sum, ref_groups, vpath)
-        ref_arr[...] = (np.sum(sums, axis=0) / min(n, reference_count)).astype(np.float32)
-        sums = compute.map(_block_registered_sum, ref_groups, vpath, ref_path, opts, m.upsample)
-        ref_arr[...] = (np.sum(sums, axis=0) / min(n, reference_count)).astype(np.float32)
+        # each reference written with its content hash, as the motion stage does
+        for fn, extra in ((_block_sum, ()), (_block_registered_sum, (ref_path, opts, m.upsample))):
+            sums = compute.map(fn, ref_groups, vpath, *extra)
+            ref = (np.sum(sums, axis=0) / min(n, reference_count)).astype(np.float32)
+            ref_arr[...] = ref
+            ref_arr.attrs["content_hash"] = content_hash(ref)
         groups = volume_groups(0, n, block=m.block_volumes, n_tasks=n)
         reference = np.asarray(ref_arr[...])
         shift_blocks, _q, acc = compute.reduce(
             _register_group, groups, vpath, ref_path, opts, m.upsample, m.neighbourhood, True,
             merge=partial(_merge_groups, offset=reference, neighbourhood=m.neighbourhood))
+        clear_reference_cache()
         acc.finalize()
         zarr.create_array(shifts_path, shape=(n, 3), dtype="float64",
                           overwrite=True)[...] = np.concatenate(shift_blocks)
