@@ -148,6 +148,18 @@ def _masked_window_rank(padded, window, fraction, min_count, out):  # pragma: no
                 out[row, i] = np.nan
 
 
+def _check_window(percentile, window, mode):
+    """The running percentiles' shared argument checks (one-line ConfigErrors)."""
+    if not 0.0 <= percentile <= 100.0:
+        raise ConfigError(f"traces.baseline_percentile: expected 0..100, got {percentile}")
+    if int(window) != window or window < 1:
+        raise ConfigError(f"traces.baseline_window: expected an integer >= 1, got {window}")
+    if mode not in _PAD_MODES:
+        raise ConfigError(
+            f"running percentile mode: expected one of {sorted(_PAD_MODES)}, got {mode!r}"
+        )
+
+
 def running_percentile(x, percentile, window, *, mode="reflect"):
     """Exact running percentile along the last axis of many traces at once.
 
@@ -191,14 +203,7 @@ def running_percentile(x, percentile, window, *, mode="reflect"):
     IEEE Trans Acoust Speech Signal Process 27:13-18. doi:10.1109/TASSP.1979.1163188
     (running-window order statistic by incremental update).
     """
-    if not 0.0 <= percentile <= 100.0:
-        raise ConfigError(f"traces.baseline_percentile: expected 0..100, got {percentile}")
-    if int(window) != window or window < 1:
-        raise ConfigError(f"traces.baseline_window: expected an integer >= 1, got {window}")
-    if mode not in _PAD_MODES:
-        raise ConfigError(
-            f"running percentile mode: expected one of {sorted(_PAD_MODES)}, got {mode!r}"
-        )
+    _check_window(percentile, window, mode)
     window = int(window)
     arr = np.asarray(x, dtype=np.float64)
     squeeze = arr.ndim == 1
@@ -344,14 +349,7 @@ def running_percentile_masked(x, percentile, window, *, min_count=1, mode="refle
     -------
     ndarray of the shape of ``x``, float64
     """
-    if not 0.0 <= percentile <= 100.0:
-        raise ConfigError(f"traces.baseline_percentile: expected 0..100, got {percentile}")
-    if int(window) != window or window < 1:
-        raise ConfigError(f"traces.baseline_window: expected an integer >= 1, got {window}")
-    if mode not in _PAD_MODES:
-        raise ConfigError(
-            f"running percentile mode: expected one of {sorted(_PAD_MODES)}, got {mode!r}"
-        )
+    _check_window(percentile, window, mode)
     arr = np.asarray(x, dtype=np.float64)
     squeeze = arr.ndim == 1
     arr2 = np.atleast_2d(arr)
