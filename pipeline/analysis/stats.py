@@ -395,7 +395,7 @@ def split_aligned_swap_times(t_s, trial, anchors, *, n_permutations, kinds=None,
     Winkler AM et al. (2015). Multi-level block permutation. NeuroImage 123:253-268
     (exchangeability blocks: permutations only within blocks). doi:10.1016/j.neuroimage.2015.05.092
     """
-    donors, table = swap_donor_times(t_s, trial, anchors)
+    donors, _ = swap_donor_times(t_s, trial, anchors)
     order = swap_orders(trial, n_permutations, kinds=kinds, seed=seed)
     return donors[order, np.arange(np.size(t_s))[None, :]]
 

@@ -172,10 +172,16 @@ class _SwappedColumns:
 
 
 def _swap_design(reg, t_fine, t, trial, options, *, seed):
-    """Every trial's terms aligned with every sample, and each permutation's donors."""
+    """Every trial's terms aligned with every sample, and each permutation's donors.
+
+    Trials are swapped within their kind (the targets they show); a plane whose trials are
+    all of different kinds swaps them all together rather than not at all.
+    """
     donors, _ = swap_donor_times(t, trial, options["anchors"])
     terms = sample_columns(t_fine, reg["terms"], donors.ravel()).astype(np.float32)
-    order = swap_orders(trial, options["n_perm"], kinds=options["kinds"], seed=seed)
+    kinds = [options["kinds"].get(int(i), 0) for i in np.unique(trial)]
+    blocks = options["kinds"] if len(kinds) > len(set(kinds)) else None
+    order = swap_orders(trial, options["n_perm"], kinds=blocks, seed=seed)
     return terms.reshape(donors.shape[0], t.size, *reg["terms"].shape[1:]), order
 
 
