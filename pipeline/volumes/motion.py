@@ -395,6 +395,7 @@ def register_volume(volume: np.ndarray, prepared: PreparedReference, *,
                          place if np.abs(place).max() > 0.1 else None)
         # the peak lies near the window's placement: search whole voxels around it by
         # matrix-multiply DFTs, the full inverse FFT only if the peak is not inside that grid
+        # (this trusts the binned pass's choice of peak; see DEVELOPERS.md)
         near = local_peak(R, shape, place, prepared.allowed)
         coarse, frac = near if near is not None else _coarse_peak(R, prepared)
     else:
