@@ -78,6 +78,20 @@ def _orth_batch(a):
     return a @ (vec * inv_sqrt[:, None, :])
 
 
+def alone_bases(cols, q_nuis):
+    """Each target's columns after the nuisance only, orthonormalised: one basis per target.
+
+    ``cols`` (n, K, m) are the target columns, ``q_nuis`` (n, q) an orthonormal basis of the
+    nuisance. A column the nuisance spans is dropped (its residual is rounding noise, which
+    an orthonormalisation would scale to unit norm).
+    """
+    n, n_t, m = cols.shape
+    flat = cols.reshape(n, n_t * m)
+    resid = flat - q_nuis @ (q_nuis.T @ flat)
+    resid[:, np.linalg.norm(resid, axis=0) <= 1e-8 * np.linalg.norm(flat, axis=0)] = 0.0
+    return [_orth(resid[:, k * m: (k + 1) * m]) for k in range(n_t)]
+
+
 def _bases(target_cols, q_nuis):
     """Per permutation: each target's unique basis and the basis of all targets together.
 
@@ -331,12 +345,7 @@ def permutation_bases(n, bearings_rad=None, *, perm_index=None, nuisance=None,
     uniq0, joint0 = _bases(cols[None], q_nuis)
     uniq0, joint0 = uniq0[0].reshape(n, width), joint0[0]
     stack2 = stack.reshape(n, -1)
-    flat = cols.reshape(n, width)
-    resid_cols = flat - q_nuis @ (q_nuis.T @ flat)
-    # a column the nuisance spans leaves rounding noise, which _orth would scale to unit norm
-    gone = np.linalg.norm(resid_cols, axis=0) <= 1e-8 * np.linalg.norm(flat, axis=0)
-    resid_cols[:, gone] = 0.0
-    alone_b = [_orth(resid_cols[:, k * m: (k + 1) * m]) for k in range(n_t)]
+    alone_b = alone_bases(cols, q_nuis)
     full_x = np.concatenate([cols.reshape(n, width), z_all], axis=1)
     pinv = _coef_operator(full_x)
     return PermutationBases(stack2, uniq0, joint0, alone_b, q_nuis, pinv, n_t, m, n_perm)

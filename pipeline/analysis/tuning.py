@@ -26,6 +26,7 @@ from pipeline.analysis.permtest import (
     PermutationBases,
     UniqueVariance,
     _orth,
+    alone_bases,
     bearing_design,
     permutation_bases,
     unique_variance_test,
@@ -265,15 +266,9 @@ def within_trial_alone_r2(activity, columns, *, trial, nuisance=None):
     yc = y - y.mean(axis=0)
     sst = np.sum(yc * yc, axis=0)
     out = np.zeros((cols.shape[1], y.shape[1]))
-    for k in range(cols.shape[1]):
-        x = cols[:, k]
-        r = x - q @ (q.T @ x)
-        # a column the nuisance spans leaves rounding noise, which _orth would scale up
-        r = r[:, np.linalg.norm(r, axis=0) > 1e-8 * np.linalg.norm(x, axis=0)]
-        if r.shape[1]:
-            w = _orth(r)
-            with np.errstate(invalid="ignore", divide="ignore"):
-                out[k] = np.where(sst > 0, np.sum((w.T @ y) ** 2, axis=0) / sst, 0.0)
+    for k, w in enumerate(alone_bases(cols, q)):
+        with np.errstate(invalid="ignore", divide="ignore"):
+            out[k] = np.where(sst > 0, np.sum((w.T @ y) ** 2, axis=0) / sst, 0.0)
     return out
 
 

@@ -137,19 +137,19 @@ def _plane_design(reg, t_fine, z, plane_t, trial_z, bearing_z, split_s, options)
             "terms": sample_columns(t_fine, reg["terms"], t),
             "levels": sample_columns(t_fine, reg["levels"], t),
             "motor": motor,
-            "perms": (None if options["null"] == "aligned"
-                      else _perms(trial_z[idx], options, seed=options["seed"] + int(z))),
-            "swap": (_swap_design(reg, t_fine, t, trial_z[idx], options,
+            "null": (_swap_design(reg, t_fine, t, trial_z[idx], options,
                                   seed=options["seed"] + int(z))
-                     if options["null"] == "aligned" else None)}
+                     if options["null"] == "aligned"
+                     else _perms(trial_z[idx], options, seed=options["seed"] + int(z)))}
 
 
 def _null_of(design, e, keep):
-    """The permutation arguments of epoch ``e``'s test (the swap's or a row reordering)."""
-    if design["swap"] is not None:
-        terms, order = design["swap"]
+    """The permutation arguments of epoch ``e``'s test: the swap's (a tuple of the donor
+    table and orders) or a row reordering (an index array)."""
+    if isinstance(design["null"], tuple):
+        terms, order = design["null"]
         return {"perm_columns": _SwappedColumns(terms[:, :, e][:, :, keep], order)}
-    return {"perm_index": design["perms"]}
+    return {"perm_index": design["null"]}
 
 
 class _SwappedColumns:
@@ -222,6 +222,7 @@ def run_tuning(settings, store, compute):
     exposure = float(store.read_array(ALIGN["plane_times"]).attrs.get("exposure_s", 0.0))
     t_rig, bearing_rig, trial_rig = _fine_behaviour(store)
     t_fine, held = uniform_grid(t_rig, np.column_stack([bearing_rig, trial_rig]))
+    bearing_fine, trial_fine = held[:, :-1], held[:, -1].astype(np.int64)
     splits = store.read_table("splits.parquet")
     split_t = _scope_times(store, splits, "split_rig_s")
     split_s = {t: split_t[splits["trial"].to_numpy() == t]
@@ -236,8 +237,8 @@ def run_tuning(settings, store, compute):
         bouts = (_scope_times(store, tab, "onset_rig_s"),
                  tab["angle_rad"].to_numpy(np.float64), vig)
     # the null's anchors: each trial's first split, its span on the rig's clock and its kind
-    anchors = trial_anchors(t_fine, held[:, -1].astype(np.int64), held[:, :-1], split_s)
-    reg = tuning_regressors(t_fine, held[:, :-1], held[:, -1].astype(np.int64), split_s,
+    anchors = trial_anchors(t_fine, trial_fine, bearing_fine, split_s)
+    reg = tuning_regressors(t_fine, bearing_fine, trial_fine, split_s,
                             rise_s=im.rise_s, decay_s=im.decay_s, n_harmonics=ts.n_harmonics,
                             bouts=bouts, leads_s=ts.nuisance_leads_s)
     options = {"n_perm": ts.n_permutations, "seed": ts.seed, "pre_s": ts.pre_window_s,

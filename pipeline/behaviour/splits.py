@@ -197,10 +197,19 @@ def _segment(st: _Steps, gain: float, penalty: float, prior: CrossingPrior | Non
         loss = np.where(np.isfinite(err), 1.0 - np.cos(st.turn - gain * err), 2.0)
         return np.concatenate(([0.0], np.cumsum(loss)))
 
+    crossing: dict[tuple[int, ...], NDArray[np.float64]] = {}
+
+    def cost(members: list[int]) -> NDArray[np.float64]:   # once per set: sets recur
+        key = tuple(sorted(members))                         # across drop orders
+        if key not in crossing:
+            assert prior is not None
+            crossing[key] = _crossing_cost(st, members, prior)
+        return crossing[key]
+
     def never(members: list[int]) -> float:    # prior cost of no further split
         if prior is None or len(members) < 2:
             return 0.0
-        return float(_crossing_cost(st, members, prior)[-1])
+        return float(cost(members)[-1])
 
     base = cum_loss(_goal_errors(st, [r0])[0])
     best: tuple[float, list[int], list[int], list[list[int]]] = (
@@ -210,8 +219,7 @@ def _segment(st: _Steps, gain: float, penalty: float, prior: CrossingPrior | Non
         for j in order:
             sets.append([m for m in sets[-1] if m != j])
         cums = [cum_loss(e) for e in _goal_errors(st, sets)]
-        costs = None if prior is None else [
-            _crossing_cost(st, s_, prior)[:-1] for s_ in sets[:-1]]
+        costs = None if prior is None else [cost(s_)[:-1] for s_ in sets[:-1]]
         for n_lv in range(1, len(order) + 1):
             loss, cuts = _best_segmentation(cums[:n_lv + 1],
                                             None if costs is None else costs[:n_lv])

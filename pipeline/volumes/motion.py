@@ -20,7 +20,13 @@ import scipy.fft as sfft
 import scipy.ndimage as ndi
 
 from pipeline.errors import ConfigError
-from pipeline.volumes.motion_dft import apply_window, half_weights, local_peak, upsampled_peak
+from pipeline.volumes.motion_dft import (
+    apply_window,
+    half_weights,
+    local_peak,
+    parabolic_offset,
+    upsampled_peak,
+)
 
 __all__ = [
     "PreparedReference",
@@ -201,10 +207,7 @@ def _coarse_peak(R: np.ndarray, prepared: PreparedReference) -> tuple[np.ndarray
             continue
         lo, hi = list(idx), list(idx)
         lo[a], hi[a] = (idx[a] - 1) % shape[a], (idx[a] + 1) % shape[a]
-        cm, c0, cp = c[tuple(lo)], c[tuple(idx)], c[tuple(hi)]
-        den = cm - 2 * c0 + cp
-        if den < 0:
-            frac[a] = float(np.clip(0.5 * (cm - cp) / den, -0.5, 0.5))
+        frac[a] = parabolic_offset(c[tuple(lo)], c[tuple(idx)], c[tuple(hi)])
     return coarse, frac
 
 

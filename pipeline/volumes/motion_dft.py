@@ -17,7 +17,8 @@ import numba
 import numpy as np
 import scipy.fft as sfft
 
-__all__ = ["apply_window", "dft_grid", "upsampled_peak", "local_peak", "half_weights"]
+__all__ = ["apply_window", "dft_grid", "upsampled_peak", "local_peak", "half_weights",
+           "parabolic_offset"]
 
 
 @numba.njit(cache=True, nogil=True)
@@ -158,8 +159,14 @@ def local_peak(R: np.ndarray, shape: tuple[int, int, int], centre: np.ndarray,
             continue
         lo, hi = list(i), list(i)
         lo[a], hi[a] = i[a] - 1, i[a] + 1
-        cm, c0, cp = c[tuple(lo)], c[tuple(i)], c[tuple(hi)]
-        den = cm - 2 * c0 + cp
-        if den < 0:
-            frac[a] = float(np.clip(0.5 * (cm - cp) / den, -0.5, 0.5))
+        frac[a] = parabolic_offset(c[tuple(lo)], c[tuple(i)], c[tuple(hi)])
     return coarse, frac
+
+
+def parabolic_offset(cm: float, c0: float, cp: float) -> float:
+    """Sub-voxel offset of the vertex of the parabola through three neighbouring correlation
+    values (left, centre, right), within +-0.5; 0 when they do not curve downwards."""
+    den = cm - 2 * c0 + cp
+    if den < 0:
+        return float(np.clip(0.5 * (cm - cp) / den, -0.5, 0.5))
+    return 0.0

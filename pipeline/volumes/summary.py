@@ -209,8 +209,8 @@ class SummaryAccumulator:
         if off is None:
             off = np.broadcast_to(np.zeros((1, 1, 1), np.float32), self.shape)
         accumulate(np.ascontiguousarray(v), k, f, off, shifts_vox is None,
-                    _MODE[self.neighbourhood], self.sum_x, self.sum_xx, self.sum_xn,
-                    self.sum_nn)
+                   _MODE[self.neighbourhood], self.sum_x, self.sum_xx, self.sum_xn,
+                   self.sum_nn)
         self.n += nb
 
     def update(self, registered_volume: np.ndarray) -> None:

@@ -215,13 +215,17 @@ def running_percentile(x, percentile, window, *, mode="reflect"):
             "expected finite values"
         )
     rank = window - 1 if percentile == 100.0 else int(float(window) * percentile / 100.0)
-    before = window // 2
-    after = window - 1 - before
-    padded = np.pad(arr2, ((0, 0), (before, after)), mode=_PAD_MODES[mode])  # type: ignore[call-overload]
     out = np.empty(arr2.shape, dtype=np.float64)
     if arr2.shape[1] > 0:
-        _sorted_window_rank(np.ascontiguousarray(padded), window, rank, out)
+        _sorted_window_rank(_padded(arr2, window, mode), window, rank, out)
     return out[0] if squeeze else out
+
+
+def _padded(arr2, window, mode):
+    """Rows extended past both ends as scipy.ndimage extends them (``window // 2`` before)."""
+    before = window // 2
+    return np.ascontiguousarray(np.pad(arr2, ((0, 0), (before, window - 1 - before)),
+                                       mode=_PAD_MODES[mode]))  # type: ignore[call-overload]
 
 
 def window_samples(window_s, rate_hz):
@@ -358,11 +362,9 @@ def running_percentile_masked(x, percentile, window, *, min_count=1, mode="refle
         raise InputError(f"running percentile: trace {bad[0]} is infinite at sample {bad[1]}; "
                          "expected finite values or NaN (left out)")
     window = int(window)
-    before = window // 2
-    padded = np.pad(arr2, ((0, 0), (before, window - 1 - before)), mode=_PAD_MODES[mode])  # type: ignore[call-overload]
     out = np.empty(arr2.shape, dtype=np.float64)
     if arr2.shape[1] > 0:
-        _masked_window_rank(np.ascontiguousarray(padded), window, percentile / 100.0,
+        _masked_window_rank(_padded(arr2, window, mode), window, percentile / 100.0,
                             max(1, int(min_count)), out)
     return out[0] if squeeze else out
 
@@ -370,9 +372,10 @@ def running_percentile_masked(x, percentile, window, *, min_count=1, mode="refle
 def _exclude_active(f, f0, percentile, window, k, mode, passes=2):
     """Re-take a running-percentile baseline without the samples of activity.
 
-    Samples above ``f0 + k * sigma`` (:func:`pipeline.volumes.oasis.noise_sigma`) are left out and the percentile is
-    taken again over what remains of each window; where less than a fifth of a window remains
-    the previous baseline is kept. Two passes: the first baseline is the lifted one.
+    Samples above ``f0 + k * sigma`` (:func:`pipeline.volumes.oasis.noise_sigma`) are left
+    out and the percentile is taken again over what remains of each window; where less than
+    a fifth of a window remains the previous baseline is kept. Two passes: the first
+    baseline is the lifted one.
     """
     sigma = noise_sigma(f)[:, None]
     for _ in range(passes):
@@ -463,7 +466,7 @@ def _finish_block(c0, c1, raw_path, neuropil_path, out_paths, options):
     neu = np.asarray(zarr.open_array(neuropil_path, mode="r")[c0:c1])
     corrected = subtract_neuropil(raw, neu, ratio=options["ratio"])
     dff, _ = delta_f_over_f(corrected, rate_hz=options["rate_hz"], window_s=options["window_s"],
-                                exclude_sigma=options["exclude_sigma"],
+                            exclude_sigma=options["exclude_sigma"],
                             percentile=options["percentile"], f0_floor=options["f0_floor"],
                             f0_floor_frac=options["f0_floor_frac"])
     if options["gamma"] is not None:

@@ -248,7 +248,7 @@ def stage_passes(vpath: str, labels: np.ndarray, work: Path, *, reference_count:
             ref_arr[...] = ref
             ref_arr.attrs["content_hash"] = content_hash(ref)
         groups = volume_groups(0, n, block=m.block_volumes, n_tasks=n)
-        reference = np.asarray(ref_arr[...])
+        reference = ref                       # the refined reference just written
         shift_blocks, _q, acc = compute.reduce(
             _register_group, groups, vpath, ref_path, opts, m.upsample, m.neighbourhood, True,
             merge=partial(_merge_groups, offset=reference, neighbourhood=m.neighbourhood))
