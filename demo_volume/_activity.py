@@ -137,7 +137,11 @@ def _assign_classes(sc: Scenario, cells: pd.DataFrame, grid: BehaviourGrid,
     for i in np.flatnonzero(labels == "bearing"):
         k = int(rng.choice(N_TARGET_SLOTS, p=tw / tw.sum()))
         ep = str(rng.choice(["pre", "post", "both"], p=ew / ew.sum()))
-        ok = present[k] & ((grid.post if ep == "post" else ~grid.post) | (ep == "both"))
+        # "both" draws its preference before the split too: bearings before the split span a
+        # narrow range around the options' average, bearings after it nearly the whole circle,
+        # so a preference drawn after the split would leave the cell silent (not tuned)
+        # before it
+        ok = present[k] & (grid.post if ep == "post" else ~grid.post)
         if not ok.any():
             ok = present[k]
         target[i], epoch[i] = k, ep

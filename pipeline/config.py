@@ -301,10 +301,11 @@ class TuningSettings:
                                "have samples in it (with fewer, whole-trial permutations cannot "
                                "tell the targets' correlated bearings apart)", ge=3)
     between_epoch: Literal["auto", "separate", "merged"] = _f(
-        "auto", doc="samples between a trial's first and last split (three targets): "
-        "'separate' = their own 'between' epoch; 'merged' = part of 'post' (epochs cut at each "
-        "trial's first split only); 'auto' = merged when fewer than min_epoch_trials trials "
-        "have two splits (a 'between' epoch that could not be tested would lose its samples)")
+        "merged", doc="samples between a trial's first and last split (three targets): "
+        "'merged' = part of 'post' (epochs cut at each trial's first split only); 'separate' = "
+        "their own 'between' epoch (a few seconds per trial: measured on the demo, its flags "
+        "held 2-4x more false keys than 'pre' and 'post'); 'auto' = separate only when at "
+        "least min_epoch_trials trials have two splits")
     null: Literal["aligned", "trial", "circular"] = _f(
         "aligned", doc="'aligned': each trial's samples get the bearing terms of another trial "
         "showing the same targets, aligned at the first split; 'trial': whole trials "

@@ -193,6 +193,11 @@ def test_tuning_stage_skips_epochs_with_too_few_trials(rng, tmp_path, min_trials
     table = pd.read_parquet(base.root / "tuning.parquet")
     expected = {"pre", "post"} if min_trials <= N_TRIALS else set()
     assert set(table["epoch"]) == expected
+    # the record counts the trials showing each target, and warns when they are too few
+    record = sub.record_extras()
+    assert record["info"]["trials_per_target"] == {"t0": N_TRIALS, "t1": N_TRIALS}
+    few = [w for w in record["warnings"] if f"is shown in {N_TRIALS} trials" in w]
+    assert len(few) == (2 if min_trials > N_TRIALS else 0)
 
 
 @pytest.mark.parametrize(("present", "missing"), [

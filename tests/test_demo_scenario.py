@@ -200,6 +200,26 @@ def test_enough_planted_events_for_statistics(session: Path, splits: pd.DataFram
     assert (cells.loc[cells["cell_class"] == "untuned", "target"] == -1).all()
 
 
+def test_bearing_cells_prefer_a_bearing_their_target_takes_in_their_epoch(
+        log: pd.DataFrame, session: Path, splits: pd.DataFrame) -> None:
+    # a preference the target never takes in the epoch would leave the cell silent there:
+    # "both" cells draw theirs before the split (the narrower range), so they are tuned in both
+    cells = pd.read_parquet(session / "truth" / "cells.parquet")
+    first = splits[splits["split_index"] == 0].set_index("trial")["t_split_rig_s"]
+    inside = log[log["trial"] >= 0]
+    t_split = inside["trial"].map(first).fillna(np.inf).to_numpy()
+    before = inside["time_s"].to_numpy() < t_split
+    bearing = {k: np.angle(np.exp(1j * (np.arctan2(inside[f"t{k}_y_mm"] - inside["y_mm"],
+                                                   inside[f"t{k}_x_mm"] - inside["x_mm"])
+                                        - inside["heading_rad"]))) for k in range(3)}
+    tuned = cells[cells["cell_class"] == "bearing"]
+    for r in tuned.itertuples():
+        b = bearing[int(r.target)]
+        seen = b[(before if r.epoch in ("pre", "both") else ~before) & np.isfinite(b)]
+        gap = np.abs(np.angle(np.exp(1j * (seen - r.pref_bearing_rad)))).min()
+        assert np.degrees(gap) < 2.0, (r.id, r.epoch)
+
+
 def test_moving_target_follows_a_smooth_path(log: pd.DataFrame, splits: pd.DataFrame) -> None:
     trial = int(splits.loc[splits["has_moving_target"], "trial"].iat[0])
     rows = log[log["trial"] == trial]

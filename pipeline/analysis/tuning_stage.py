@@ -238,6 +238,12 @@ def run_tuning(settings, store, compute):
                  tab["angle_rad"].to_numpy(np.float64), vig)
     # the null's anchors: each trial's first split, its span on the rig's clock and its kind
     anchors = trial_anchors(t_fine, trial_fine, bearing_fine, split_s)
+    shown = _trials_per_target(anchors[1], _target_names(settings, n_targets))
+    for name, count in shown.items():
+        if count < ts.min_epoch_trials:
+            store.warn(f"tuning: target {name} is shown in {count} trials with a split, fewer "
+                       f"than tuning.min_epoch_trials = {ts.min_epoch_trials}: its tests "
+                       f"have little power (few trials to swap)")
     reg = tuning_regressors(t_fine, bearing_fine, trial_fine, split_s,
                             rise_s=im.rise_s, decay_s=im.decay_s, n_harmonics=ts.n_harmonics,
                             bouts=bouts, leads_s=ts.nuisance_leads_s)
@@ -270,7 +276,14 @@ def run_tuning(settings, store, compute):
             tasks.append((rows[a: a + ts.block_cells], design))
     results = compute.map(_tuning_task_star, tasks, path, options, desc="tuning")
     _write_tuning(store, settings, cells, [r for block in results for r in block],
-                  reg["epochs"], n_targets, between=between)
+                  reg["epochs"], n_targets, between=between, shown=shown)
+
+
+def _trials_per_target(kinds, names):
+    """Trials (with a split) showing each target, from the null's trial kinds (bit k set when
+    target k is shown)."""
+    return {name: sum(1 for kind in kinds.values() if kind >> k & 1)
+            for k, name in enumerate(names)}
 
 
 def _epoch_splits(split_s, mode, min_trials):
@@ -299,7 +312,8 @@ def _target_names(settings, n_targets):
     return names if len(names) == n_targets else [f"t{k}" for k in range(n_targets)]
 
 
-def _write_tuning(store, settings, cells, parts, epochs, n_targets, between="separate"):
+def _write_tuning(store, settings, cells, parts, epochs, n_targets, between="separate",
+                  shown=None):
     ts = settings.tuning
     names = _target_names(settings, n_targets)
     n_cells = len(cells)
@@ -362,7 +376,9 @@ def _write_tuning(store, settings, cells, parts, epochs, n_targets, between="sep
     # cells whose bearing terms are significant but whose target cannot be named, per epoch
     n_ambiguous = {e: int(ambiguous[:, j].any(axis=0).sum()) for j, e in enumerate(epochs)}
     store.set_info({"fractions": summary, "switches": switches, "ambiguous": n_ambiguous,
-                    "between_epoch": between, "null": ts.null,
+                    "between_epoch": between, "between_setting": ts.between_epoch,
+                    "trials_per_target": shown or {},
+                    "null": ts.null,
                     "n_permutations": ts.n_permutations})
     _paint(store, cells, grid, tuned, names, epochs)
 

@@ -377,9 +377,18 @@ def _tuning(ctx: _Ctx) -> str:
         notes += (f" Null: {null}, {info.get('n_permutations', '?')} permutations; it assumes "
                   "trials are exchangeable, which slow drift across the session or learning "
                   "can break.")
+    shown = info.get("trials_per_target") or {}
+    if shown:
+        notes += (" Trials (with a split) showing each target: "
+                  + ", ".join(f"{k} {v}" for k, v in shown.items()) + "; a target shown in "
+                  "few trials is tested with little power, so few of its cells are flagged.")
     if between == "merged into post":
-        notes += (" Epochs are cut at each trial's first split: too few trials had two splits "
-                  "to test the stretch between them on its own, so it is part of 'post'.")
+        why = ("too few trials had two splits to test the stretch between them on its own"
+               if info.get("between_setting") == "auto" else
+               "tuning.between_epoch = 'merged'; 'separate' tests the few seconds between a "
+               "three-target trial's splits as an epoch of their own")
+        notes += (f" Epochs are cut at each trial's first split ({why}), so the stretch "
+                  "between the splits is part of 'post'.")
     out.append(ctx.figure("fraction_tuned", fig,
                           "Fraction of cells tuned to each target's bearing before and after "
                           "the split (Benjamini-Hochberg q below the configured level), with "
