@@ -105,6 +105,8 @@ def neighbour_mean(volume: np.ndarray, *, neighbourhood: int = 26) -> np.ndarray
         total = total - v
         count = (per_axis[0][:, None, None] * per_axis[1][None, :, None]
                  * per_axis[2][None, None, :]) - 1.0
+        # times the reciprocal of the count (as the compiled accumulation, bit for bit)
+        return np.where(count > 0, total * (1.0 / np.maximum(count, 1)), 0.0)
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.where(count > 0, total / np.maximum(count, 1), 0.0)
 

@@ -192,14 +192,16 @@ def _plane_sums(cur, up, dn, has_up, has_dn, mode, y0, y1, r0, ny, zs, ybox, mro
         c_row = cur[y - r0]
         if nx >= 3:
             c_in = cz * cy * 3.0 - 1.0
-            inv = max(c_in, 1.0)
-            for x in range(1, nx - 1):
-                t = (ybox[x] + ybox[x + 1]) + ybox[x - 1]
-                mrow[x] = (t - c_row[x]) / inv if c_in > 0 else 0.0
-            edges = (0, nx - 1)
-        else:
-            edges = (0, nx - 1)
-        for x in edges:
+            if c_in > 0:
+                # times the reciprocal, as neighbour_mean does: a division per voxel kept
+                # the loop on the divider
+                rinv = 1.0 / c_in
+                for x in range(1, nx - 1):
+                    t = (ybox[x] + ybox[x + 1]) + ybox[x - 1]
+                    mrow[x] = (t - c_row[x]) * rinv
+            else:
+                mrow[1:nx - 1] = 0.0
+        for x in (0, nx - 1):
             t = ybox[x]
             if x + 1 < nx:
                 t = t + ybox[x + 1]
@@ -207,7 +209,7 @@ def _plane_sums(cur, up, dn, has_up, has_dn, mode, y0, y1, r0, ny, zs, ybox, mro
                 t = t + ybox[x - 1]
             cx = 1.0 + (x > 0) + (x + 1 < nx) if nx > 1 else 1.0
             c = cz * cy * cx - 1.0
-            mrow[x] = (t - c_row[x]) / max(c, 1.0) if c > 0 else 0.0
+            mrow[x] = (t - c_row[x]) * (1.0 / c) if c > 0 else 0.0
         _add_row(c_row, mrow, sx[y], sxx[y], sxn[y], snn[y])
 
 

@@ -23,6 +23,7 @@ twice; (a') times exactly those stage task functions on the same data.
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import json
 import resource
@@ -54,9 +55,17 @@ def make_session(folder: Path, n_vol: int, shape: tuple[int, int, int], *, seed:
     big = ndi.gaussian_filter(big, (0.7, 1.2, 1.2)) * 15 + 100
     shifts = np.column_stack([rng.integers(-1, 2, n_vol), rng.integers(-6, 7, n_vol),
                               rng.integers(-6, 7, n_vol)]).astype(np.float64)
+    from pipeline.config import ImagingSettings
+    from pipeline.store import blosc
+
     path = str(folder / "volumes.zarr")
+    # the codec the ingest stage writes by default (Blosc lz4 + bit-shuffle): zarr's own
+    # default (zstd) decompresses about twice as slowly and made the read pass, the
+    # baseline of the first row, slower than on a real session
+    defaults = {f.name: f.default for f in dataclasses.fields(ImagingSettings)}
+    codec, level = defaults["codec"], defaults["codec_level"]
     arr = zarr.create_array(path, shape=(n_vol, *shape), chunks=(1, *shape), dtype="uint16",
-                            overwrite=True)
+                            compressors=blosc(codec, level), overwrite=True)
     for t in range(n_vol):
         # content displaced by +shift: volume_t(r) = reference(r - shift)
         sl = tuple(slice(p - int(s), p - int(s) + n)
