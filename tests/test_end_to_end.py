@@ -247,6 +247,10 @@ def test_report_has_every_section_and_image(run):
     # the tuning caption names the null it used and its assumption
     assert "aligned at the first split, 1000 permutations" in text
     assert "trials are exchangeable" in text
+    # and how many trials show each target; the small demo shows its third in 7 (< 8)
+    shown = run["session"].record("tuning")["info"]["trials_per_target"]
+    assert f"t2 {shown['t2']}" in text
+    assert ("t2: fewer than tuning.min_epoch_trials = 8" in text) == (shown["t2"] < 8)
 
 
 def test_session_api_on_the_real_store(run):

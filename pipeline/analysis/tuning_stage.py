@@ -378,6 +378,7 @@ def _write_tuning(store, settings, cells, parts, epochs, n_targets, between="sep
     store.set_info({"fractions": summary, "switches": switches, "ambiguous": n_ambiguous,
                     "between_epoch": between, "between_setting": ts.between_epoch,
                     "trials_per_target": shown or {},
+                    "min_epoch_trials": ts.min_epoch_trials,
                     "null": ts.null,
                     "n_permutations": ts.n_permutations})
     _paint(store, cells, grid, tuned, names, epochs)

@@ -380,8 +380,12 @@ def _tuning(ctx: _Ctx) -> str:
     shown = info.get("trials_per_target") or {}
     if shown:
         notes += (" Trials (with a split) showing each target: "
-                  + ", ".join(f"{k} {v}" for k, v in shown.items()) + "; a target shown in "
-                  "few trials is tested with little power, so few of its cells are flagged.")
+                  + ", ".join(f"{k} {v}" for k, v in shown.items()) + ".")
+        few = [k for k, v in shown.items() if v < info.get("min_epoch_trials", 0)]
+        if few:
+            notes += (f" {', '.join(few)}: fewer than tuning.min_epoch_trials = "
+                      f"{info['min_epoch_trials']} trials, tested with little power, so few "
+                      "of its cells can be flagged.")
     if between == "merged into post":
         why = ("too few trials had two splits to test the stretch between them on its own"
                if info.get("between_setting") == "auto" else
