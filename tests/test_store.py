@@ -11,7 +11,7 @@ import pytest
 import zarr
 
 from pipeline.errors import StoreError
-from pipeline.store import Store
+from pipeline.store import Store, VolumeReader, blosc
 
 
 def _ingest_like(root: Path) -> Store:
@@ -84,3 +84,21 @@ def test_resumable_staging_kept_only_for_same_config(tmp_path: Path) -> None:
     assert again.staging_path("partial.txt").read_text() == "3 volumes done"
     other = store.stage_store("ingest", "hash-2", resumable=True)
     assert not other.staging_path("partial.txt").exists()
+
+
+@pytest.mark.parametrize("chunk_planes", [4, 0])
+def test_volume_reader_matches_zarr_indexing(tmp_path: Path, rng: np.random.Generator,
+                                             chunk_planes: int) -> None:
+    # zarr's own arr[t] is the reference; volumes chunked whole or a few planes at a time
+    data = rng.integers(0, 4000, (5, 6, 7, 9)).astype(np.uint16)
+    chunks = (1, chunk_planes or 6, 7, 9)
+    arr = zarr.create_array(str(tmp_path / "v.zarr"), shape=data.shape, chunks=chunks,
+                            dtype="uint16", compressors=blosc("lz4", 5))
+    arr[...] = data
+    read = VolumeReader(zarr.open_array(str(tmp_path / "v.zarr"), mode="r"))
+    first = read(0)
+    for t in (3, 0, 4):
+        got = read(t)
+        assert got is first                          # one buffer, overwritten by each call
+        np.testing.assert_array_equal(got, data[t])
+        np.testing.assert_array_equal(got, np.asarray(arr[t]))

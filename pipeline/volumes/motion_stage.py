@@ -30,7 +30,7 @@ from pipeline.compute import Compute
 from pipeline.config import Settings
 from pipeline.errors import ConfigError
 from pipeline.stages import stage
-from pipeline.store import StageStore
+from pipeline.store import StageStore, VolumeReader
 from pipeline.volumes.motion import (
     prepare_reference,
     register_volume,
@@ -128,19 +128,19 @@ def clear_reference_cache() -> None:
 def _block_sum(group: tuple[int, int], volumes_path: str) -> np.ndarray:
     """Task: float64 sum of volumes ``start..stop-1``."""
     arr = zarr.open_array(volumes_path, mode="r")
+    read = VolumeReader(arr)
     total = np.zeros(arr.shape[1:], dtype=np.float64)
     for t in range(*group):
-        total += _get(arr, t)
+        total += read(t)
     return total
 
 
 def _block_registered_sum(group: tuple[int, int], volumes_path: str, reference_path: str,
                           options: dict[str, Any], upsample: int) -> np.ndarray:
     """Task: sum of volumes ``start..stop-1`` registered to the reference at ``reference_path``."""
-    arr = zarr.open_array(volumes_path, mode="r")
+    read = VolumeReader(zarr.open_array(volumes_path, mode="r"))
     _, prep = load_reference(reference_path, options)
-    total, _s, _q = registered_sum((_get(arr, t) for t in range(*group)), prep,
-                                   upsample=upsample)
+    total, _s, _q = registered_sum((read(t) for t in range(*group)), prep, upsample=upsample)
     return total
 
 
@@ -156,7 +156,7 @@ def _register_group(group: tuple[int, int], volumes_path: str, reference_path: s
     ``motion.block_volumes <= 64`` is one run and is returned as float32); longer groups add
     their runs into float64 sums in volume order (see the numerical note of
     :mod:`pipeline.volumes.summary`)."""
-    arr = zarr.open_array(volumes_path, mode="r")
+    read = VolumeReader(zarr.open_array(volumes_path, mode="r"))
     reference, prep = load_reference(reference_path, options if enabled else None)
 
     def block() -> SummaryAccumulator:
@@ -172,7 +172,7 @@ def _register_group(group: tuple[int, int], volumes_path: str, reference_path: s
         if acc.n == BLOCK32_MAX_VOLUMES:       # fold the float32 run into float64
             total = _resolve(acc, reference, neighbourhood) if total is None else total.merge(acc)
             acc = block()
-        vol = _get(arr, t)
+        vol = read(t)
         if prep is not None:
             shifts[i], quality[i] = register_volume(vol, prep, upsample=upsample)
             acc.update_shifted(vol, shifts[i])

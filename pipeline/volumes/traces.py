@@ -435,16 +435,17 @@ def _extract_block(t0, t1, volumes_path, shifts_path, weights_path, raw_path, ne
     """Task: sample volumes t0..t1-1 at their shifts; write columns of the staged arrays."""
     import zarr
 
+    from pipeline.store import VolumeReader
     from pipeline.volumes.sampling import sample_volume
 
-    vol = zarr.open_array(volumes_path, mode="r")
+    read = VolumeReader(zarr.open_array(volumes_path, mode="r"))
     shifts = np.asarray(zarr.open_array(shifts_path, mode="r")[t0:t1], dtype=np.float64)
     w = _cached_weights(weights_path)
     n = w.cell.shape[0]
     cell = np.empty((n, t1 - t0), np.float32)
     neu = np.empty((n, t1 - t0), np.float32)
     for k, t in enumerate(range(t0, t1)):
-        cell[:, k], neu[:, k] = sample_volume(np.asarray(vol[t]), shifts[k], w)
+        cell[:, k], neu[:, k] = sample_volume(read(t), shifts[k], w)
     zarr.open_array(raw_path, mode="r+")[:, t0:t1] = cell
     zarr.open_array(neuropil_path, mode="r+")[:, t0:t1] = neu
     return t0
