@@ -155,8 +155,6 @@ def local_peak(R: np.ndarray, shape: tuple[int, int, int], centre: np.ndarray,
         if int(g[i[a]]) % shape[a] not in allowed[a]:
             return None
         coarse[a] = g[i[a]]
-        if shape[a] < 3:
-            continue
         lo, hi = list(i), list(i)
         lo[a], hi[a] = i[a] - 1, i[a] + 1
         frac[a] = parabolic_offset(c[tuple(lo)], c[tuple(i)], c[tuple(hi)])

@@ -23,7 +23,6 @@ twice; (a') times exactly those stage task functions on the same data.
 
 from __future__ import annotations
 
-import dataclasses
 import hashlib
 import json
 import resource
@@ -62,10 +61,9 @@ def make_session(folder: Path, n_vol: int, shape: tuple[int, int, int], *, seed:
     # the codec the ingest stage writes by default (Blosc lz4 + bit-shuffle): zarr's own
     # default (zstd) decompresses about twice as slowly and made the read pass, the
     # baseline of the first row, slower than on a real session
-    defaults = {f.name: f.default for f in dataclasses.fields(ImagingSettings)}
-    codec, level = defaults["codec"], defaults["codec_level"]
     arr = zarr.create_array(path, shape=(n_vol, *shape), chunks=(1, *shape), dtype="uint16",
-                            compressors=blosc(codec, level), overwrite=True)
+                            compressors=blosc(ImagingSettings.codec, ImagingSettings.codec_level),
+                            overwrite=True)
     for t in range(n_vol):
         # content displaced by +shift: volume_t(r) = reference(r - shift)
         sl = tuple(slice(p - int(s), p - int(s) + n)
